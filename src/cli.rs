@@ -1,0 +1,205 @@
+//! Command-line edge: parses arguments, drives the library, turns errors
+//! into one line on stderr and an exit code.
+
+use std::path::PathBuf;
+use std::sync::atomic::AtomicBool;
+
+use clap::{Args, Parser, Subcommand};
+
+use crate::error::{exit_code, Result, RiffleError};
+use crate::multitest::LambdaChoice;
+use crate::output::TableFormat;
+use crate::scan::{self, ScanOptions};
+use crate::stats::{Side, TestKind};
+
+#[derive(Parser, Debug)]
+#[command(
+    name = "riffle",
+    version,
+    about = "Feature-wise permutation tests with FDR and FWER control for very large feature sets",
+    after_help = "Results are statistical screening results: confirm them by independent \
+validation and have them read by qualified people."
+)]
+pub struct Cli {
+    #[command(subcommand)]
+    pub command: Command,
+}
+
+#[derive(Subcommand, Debug)]
+pub enum Command {
+    /// Test every feature of a matrix between two groups of samples.
+    Scan(ScanArgs),
+    /// Run the bundled demo end to end and print a short summary.
+    Demo(DemoArgs),
+    /// Write a synthetic matrix (and its sample sheet) of any size.
+    Simulate(crate::simulate::SimulateArgs),
+}
+
+#[derive(Args, Debug)]
+pub struct ScanArgs {
+    /// Feature matrix: Arrow IPC file or Parquet, one row per feature.
+    #[arg(long)]
+    pub matrix: PathBuf,
+    /// Sample sheet: CSV or TSV with a header.
+    #[arg(long)]
+    pub samples: PathBuf,
+    /// Sample-sheet column holding the group of each sample.
+    #[arg(long)]
+    pub group: String,
+    /// Two levels of the group column, A,B: effects are B minus A.
+    #[arg(long, value_delimiter = ',', num_args = 2)]
+    pub levels: Option<Vec<String>>,
+    #[arg(long, value_enum, default_value_t = TestKind::Welch)]
+    pub test: TestKind,
+    #[arg(long, value_enum, default_value_t = Side::Both)]
+    pub side: Side,
+    /// Number of relabelings (all of them, exactly, when fewer exist).
+    #[arg(long, default_value_t = 10_000)]
+    pub perms: usize,
+    #[arg(long, default_value_t = 1)]
+    pub seed: u64,
+    /// Output folder (created if needed).
+    #[arg(long)]
+    pub out: PathBuf,
+    /// Worker threads [default: all cores].
+    #[arg(long)]
+    pub threads: Option<usize>,
+    /// Memory budget, e.g. 512M or 2G; chunk sizes and sort buffers derive from it.
+    #[arg(long, default_value = "1G", value_parser = parse_size)]
+    pub memory: u64,
+    /// Features per chunk (overrides the size derived from --memory).
+    #[arg(long)]
+    pub chunk_rows: Option<usize>,
+    /// Sample-sheet column with the sample ids.
+    #[arg(long, default_value = "sample")]
+    pub sample_column: String,
+    /// Matrix column with the feature ids.
+    #[arg(long, default_value = "feature")]
+    pub id_column: String,
+    /// Results table format.
+    #[arg(long, value_enum, default_value_t = TableFormat::Parquet)]
+    pub format: TableFormat,
+    /// Also adjust the model-based p-values (columns ending in _param).
+    #[arg(long)]
+    pub also_param: bool,
+    /// Storey's lambda: a number in [0, 1), or "bootstrap".
+    #[arg(long, default_value = "0.5", value_parser = parse_lambda)]
+    pub storey_lambda: LambdaChoice,
+    /// No progress output.
+    #[arg(long)]
+    pub quiet: bool,
+}
+
+#[derive(Args, Debug)]
+pub struct DemoArgs {
+    /// Output folder for the demo run.
+    #[arg(long, default_value = "riffle-demo")]
+    pub out: PathBuf,
+    #[arg(long)]
+    pub threads: Option<usize>,
+}
+
+pub fn parse_size(text: &str) -> std::result::Result<u64, String> {
+    let t = text.trim();
+    let split = t
+        .find(|c: char| !(c.is_ascii_digit() || c == '.'))
+        .unwrap_or(t.len());
+    let (number, unit) = t.split_at(split);
+    let value: f64 = number
+        .parse()
+        .map_err(|_| format!("'{text}' is not a size such as 512M or 2G"))?;
+    let factor: f64 = match unit.trim().to_ascii_uppercase().as_str() {
+        "" | "B" => 1.0,
+        "K" | "KB" | "KIB" => 1024.0,
+        "M" | "MB" | "MIB" => 1024.0 * 1024.0,
+        "G" | "GB" | "GIB" => 1024.0 * 1024.0 * 1024.0,
+        "T" | "TB" | "TIB" => 1024.0f64.powi(4),
+        _ => return Err(format!("unknown unit in '{text}'; use K, M, G or T")),
+    };
+    Ok((value * factor) as u64)
+}
+
+fn parse_lambda(text: &str) -> std::result::Result<LambdaChoice, String> {
+    if text.eq_ignore_ascii_case("bootstrap") {
+        return Ok(LambdaChoice::Bootstrap);
+    }
+    match text.parse::<f64>() {
+        Ok(v) if (0.0..1.0).contains(&v) => Ok(LambdaChoice::Fixed(v)),
+        _ => Err(format!(
+            "'{text}' is neither a number in [0, 1) nor 'bootstrap'"
+        )),
+    }
+}
+
+impl ScanArgs {
+    pub fn to_options(&self) -> ScanOptions {
+        ScanOptions {
+            matrix: self.matrix.clone(),
+            samples: self.samples.clone(),
+            sample_column: self.sample_column.clone(),
+            id_column: self.id_column.clone(),
+            group: self.group.clone(),
+            levels: self.levels.as_ref().map(|l| (l[0].clone(), l[1].clone())),
+            test: self.test,
+            side: self.side,
+            perms: self.perms,
+            seed: self.seed,
+            out: self.out.clone(),
+            threads: self.threads.unwrap_or_else(scan::default_threads),
+            memory_bytes: self.memory,
+            chunk_rows: self.chunk_rows,
+            format: self.format,
+            also_param: self.also_param,
+            storey_lambda: self.storey_lambda,
+            quiet: self.quiet,
+        }
+    }
+}
+
+/// Set by SIGINT/SIGTERM; the pipeline stops at the next chunk.
+pub static STOP: AtomicBool = AtomicBool::new(false);
+
+pub fn main_with_args(args: impl IntoIterator<Item = std::ffi::OsString>) -> i32 {
+    // A second signal while stopping is ignored; the pipeline checks STOP
+    // between chunks and the outputs are only renamed into place when whole.
+    let _ = ctrlc::set_handler(|| STOP.store(true, std::sync::atomic::Ordering::Relaxed));
+    let cli = match Cli::try_parse_from(args) {
+        Ok(cli) => cli,
+        Err(e) => {
+            let _ = e.print();
+            return if e.use_stderr() {
+                exit_code::BAD_INPUT
+            } else {
+                exit_code::OK
+            };
+        }
+    };
+    match dispatch(cli) {
+        Ok(()) => exit_code::OK,
+        Err(e) => {
+            eprintln!("riffle: error: {e}");
+            e.exit_code()
+        }
+    }
+}
+
+fn dispatch(cli: Cli) -> Result<()> {
+    match cli.command {
+        Command::Scan(args) => {
+            let options = args.to_options();
+            let summary = scan::run_scan(&options, &STOP)?;
+            if !options.quiet {
+                eprintln!("{}", crate::demo::summary_text(&summary));
+            }
+            Ok(())
+        }
+        Command::Demo(args) => crate::demo::run_demo(&args.out, args.threads, &STOP),
+        Command::Simulate(args) => crate::simulate::run_simulate(&args),
+    }
+}
+
+impl From<clap::Error> for RiffleError {
+    fn from(e: clap::Error) -> Self {
+        RiffleError::options(e.to_string())
+    }
+}

@@ -1,0 +1,170 @@
+//! Pipeline stage: reader thread -> bounded queue -> worker pool running
+//! the kernel -> bounded queue -> ordered writer (the calling thread).
+//!
+//! Chunks may finish out of order; the writer holds at most the chunks in
+//! flight and emits them in feature order, so results do not depend on the
+//! thread count or the chunk size.
+
+use std::collections::BTreeMap;
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::Arc;
+use std::time::Instant;
+
+use crossbeam_channel::bounded;
+
+use crate::error::{Result, RiffleError};
+use crate::input::{FeatureBlock, FeatureSource};
+use crate::kernel::{ChunkOutcome, Kernel, KernelScratch};
+
+/// A finished chunk handed to the writer.
+pub struct FinishedChunk {
+    pub first_index: u64,
+    pub ids: Vec<String>,
+    pub outcome: ChunkOutcome,
+}
+
+/// Receives finished chunks in feature order.
+pub trait ChunkSink {
+    fn accept(&mut self, chunk: FinishedChunk) -> Result<()>;
+}
+
+#[derive(Debug, Clone)]
+pub struct PipelineOptions {
+    pub threads: usize,
+    pub chunk_rows: usize,
+    /// Chunks that may wait in each queue.
+    pub queue_depth: usize,
+}
+
+#[derive(Debug, Clone, Default)]
+pub struct PipelineStats {
+    pub features: u64,
+    pub chunks: u64,
+    /// Seconds the reader spent inside `next_block`.
+    pub read_seconds: f64,
+    /// Seconds summed over workers spent in the kernel.
+    pub kernel_seconds: f64,
+    pub wall_seconds: f64,
+}
+
+/// Called by the writer after each chunk with the features done so far.
+pub type Progress<'a> = &'a mut dyn FnMut(u64);
+
+pub fn run(
+    mut source: Box<dyn FeatureSource>,
+    kernel: Arc<Kernel>,
+    options: &PipelineOptions,
+    stop: &AtomicBool,
+    sink: &mut dyn ChunkSink,
+    progress: Progress<'_>,
+) -> Result<PipelineStats> {
+    let started = Instant::now();
+    let threads = options.threads.max(1);
+    let chunk_rows = options.chunk_rows.max(1);
+    let depth = options.queue_depth.max(1);
+    let (work_tx, work_rx) = bounded::<(u64, FeatureBlock)>(depth);
+    let (done_tx, done_rx) = bounded::<Result<(u64, FinishedChunk, f64)>>(depth + threads);
+    let failed = Arc::new(AtomicBool::new(false));
+
+    std::thread::scope(|scope| -> Result<PipelineStats> {
+        let reader_failed = failed.clone();
+        let reader_done = done_tx.clone();
+        let reader = scope.spawn(move || -> f64 {
+            let mut read_seconds = 0.0;
+            let mut chunk_index = 0u64;
+            loop {
+                if stop.load(Ordering::Relaxed) || reader_failed.load(Ordering::Relaxed) {
+                    break;
+                }
+                let mut block = FeatureBlock::default();
+                let t0 = Instant::now();
+                let got = source.next_block(chunk_rows, &mut block);
+                read_seconds += t0.elapsed().as_secs_f64();
+                match got {
+                    Ok(0) => break,
+                    Ok(_) => {
+                        if work_tx.send((chunk_index, block)).is_err() {
+                            break;
+                        }
+                        chunk_index += 1;
+                    }
+                    Err(e) => {
+                        let _ = reader_done.send(Err(e));
+                        break;
+                    }
+                }
+            }
+            read_seconds
+        });
+        for _ in 0..threads {
+            let rx = work_rx.clone();
+            let tx = done_tx.clone();
+            let kernel = kernel.clone();
+            let worker_failed = failed.clone();
+            scope.spawn(move || {
+                let mut scratch = KernelScratch::default();
+                while let Ok((index, block)) = rx.recv() {
+                    if worker_failed.load(Ordering::Relaxed) {
+                        continue;
+                    }
+                    let t0 = Instant::now();
+                    let outcome = kernel.run_chunk(&block.values, block.rows(), &mut scratch);
+                    let seconds = t0.elapsed().as_secs_f64();
+                    let chunk = FinishedChunk {
+                        first_index: block.first_index,
+                        ids: block.ids,
+                        outcome,
+                    };
+                    if tx.send(Ok((index, chunk, seconds))).is_err() {
+                        break;
+                    }
+                }
+            });
+        }
+        drop(work_rx);
+        drop(done_tx);
+
+        let mut stats = PipelineStats::default();
+        let mut pending: BTreeMap<u64, FinishedChunk> = BTreeMap::new();
+        let mut next = 0u64;
+        let mut outcome: Result<()> = Ok(());
+        for message in done_rx.iter() {
+            if outcome.is_err() {
+                continue;
+            }
+            match message {
+                Ok((index, chunk, seconds)) => {
+                    stats.kernel_seconds += seconds;
+                    pending.insert(index, chunk);
+                    while let Some(chunk) = pending.remove(&next) {
+                        stats.features += chunk.ids.len() as u64;
+                        stats.chunks += 1;
+                        if let Err(e) = sink.accept(chunk) {
+                            outcome = Err(e);
+                            failed.store(true, Ordering::Relaxed);
+                            break;
+                        }
+                        next += 1;
+                        progress(stats.features);
+                    }
+                }
+                Err(e) => {
+                    outcome = Err(e);
+                    failed.store(true, Ordering::Relaxed);
+                }
+            }
+        }
+        stats.read_seconds = reader
+            .join()
+            .map_err(|_| RiffleError::Internal("the reader thread panicked".into()))?;
+        outcome?;
+        if stop.load(Ordering::Relaxed) {
+            return Err(RiffleError::Interrupted);
+        }
+        if !pending.is_empty() {
+            return Err(RiffleError::Internal("chunks left unwritten".into()));
+        }
+        stats.wall_seconds = started.elapsed().as_secs_f64();
+        Ok(stats)
+    })
+}

@@ -1,0 +1,521 @@
+//! The `scan` job: sample sheet + matrix -> relabelings -> pipeline ->
+//! spill -> multiple testing -> results table and run record. The CLI,
+//! the demo and the tests all drive this one function.
+
+use std::path::{Path, PathBuf};
+use std::sync::atomic::AtomicBool;
+use std::sync::Arc;
+use std::time::Instant;
+
+use crate::design::{Relabelings, SampleSheet, TwoGroupDesign};
+use crate::error::{IoContext, Result, RiffleError};
+use crate::input::{self, MatrixInfo};
+use crate::kernel::Kernel;
+use crate::multitest::{self, AdjustOptions, AdjustSummary, LambdaChoice, Method, PValueSource};
+use crate::output::{create_table, Cell, ColumnKind, TableFormat};
+use crate::pipeline::{self, ChunkSink, FinishedChunk, PipelineOptions, PipelineStats};
+use crate::progress::ProgressReporter;
+use crate::spill::{self, PSource, Record, SpillReader, SpillWriter};
+use crate::stats::prepare::{Status, TestSpec};
+use crate::stats::{Side, Sizes, TestKind};
+
+/// Everything that defines a scan. Serialized into `run.json`.
+#[derive(Debug, Clone, serde::Serialize)]
+pub struct ScanOptions {
+    pub matrix: PathBuf,
+    pub samples: PathBuf,
+    pub sample_column: String,
+    pub id_column: String,
+    pub group: String,
+    pub levels: Option<(String, String)>,
+    pub test: TestKind,
+    pub side: Side,
+    pub perms: usize,
+    pub seed: u64,
+    pub out: PathBuf,
+    pub threads: usize,
+    pub memory_bytes: u64,
+    /// Features per chunk; derived from `memory_bytes` when absent.
+    pub chunk_rows: Option<usize>,
+    pub format: TableFormat,
+    /// Also adjust the model-based p-values.
+    pub also_param: bool,
+    pub storey_lambda: LambdaChoice,
+    pub quiet: bool,
+}
+
+impl ScanOptions {
+    /// Defaults for everything but the inputs, design and output.
+    pub fn new(matrix: &Path, samples: &Path, group: &str, out: &Path) -> Self {
+        ScanOptions {
+            matrix: matrix.to_path_buf(),
+            samples: samples.to_path_buf(),
+            sample_column: "sample".into(),
+            id_column: "feature".into(),
+            group: group.into(),
+            levels: None,
+            test: TestKind::Welch,
+            side: Side::Both,
+            perms: 10_000,
+            seed: 1,
+            out: out.to_path_buf(),
+            threads: default_threads(),
+            memory_bytes: 1 << 30,
+            chunk_rows: None,
+            format: TableFormat::Parquet,
+            also_param: false,
+            storey_lambda: LambdaChoice::Fixed(0.5),
+            quiet: true,
+        }
+    }
+}
+
+pub fn default_threads() -> usize {
+    std::thread::available_parallelism()
+        .map(|n| n.get())
+        .unwrap_or(1)
+}
+
+/// What a finished scan reports back (also written to `run.json`).
+#[derive(Debug, Clone, serde::Serialize)]
+pub struct ScanSummary {
+    pub features: u64,
+    pub tested: u64,
+    pub untested: Vec<(String, u64)>,
+    pub relabelings: usize,
+    pub exact: bool,
+    pub n_a: usize,
+    pub n_b: usize,
+    pub level_a: String,
+    pub level_b: String,
+    pub pi0: f64,
+    /// Features at q_bh <= 0.01, 0.05, 0.1.
+    pub bh_hits: [u64; 3],
+    pub fwer_hits_05: u64,
+    pub results_path: PathBuf,
+    pub seconds: f64,
+    pub feature_relabelings_per_second: f64,
+}
+
+/// Spill folder inside an output folder.
+pub const SPILL_DIR: &str = "spill";
+pub const RESULTS_STEM: &str = "results";
+pub const RUN_RECORD: &str = "run.json";
+
+pub fn run_scan(options: &ScanOptions, stop: &AtomicBool) -> Result<ScanSummary> {
+    let started = Instant::now();
+    validate(options)?;
+    let sheet = SampleSheet::read(&options.samples, &options.sample_column)?;
+    let levels = options
+        .levels
+        .as_ref()
+        .map(|(a, b)| (a.as_str(), b.as_str()));
+    let design = TwoGroupDesign::from_sheet(&sheet, &options.group, levels)?;
+    let source = input::open_matrix(&options.matrix, &options.id_column, &design.samples)?;
+    let info = source.info().clone();
+
+    let relabel = Relabelings::draw(&design.labels, options.perms, options.seed);
+    let spec = TestSpec {
+        test: options.test,
+        side: options.side,
+        sizes: Sizes {
+            n_a: design.n_a,
+            n_b: design.n_b,
+        },
+    };
+    let b_total = relabel.count;
+    let exact = relabel.exact;
+    let kernel = Arc::new(Kernel::new(spec, design.labels.clone(), relabel));
+
+    prepare_out_dir(&options.out)?;
+    let spill_dir = options.out.join(SPILL_DIR);
+    let pipeline_options = pipeline_options(options, design.n(), b_total);
+    let mut sink = SpillSink {
+        writer: SpillWriter::create(&spill_dir)?,
+        null_max: vec![f64::NEG_INFINITY; b_total],
+        source: if exact {
+            PSource::Exact
+        } else {
+            PSource::Counted
+        },
+        b_total,
+        spec,
+        tested: 0,
+        untested: Default::default(),
+    };
+    let mut reporter = ProgressReporter::new(info.n_features, options.quiet, "scan");
+    let stats = pipeline::run(
+        source,
+        kernel,
+        &pipeline_options,
+        stop,
+        &mut sink,
+        &mut |done| reporter.update(done),
+    )?;
+    reporter.finish();
+    let SpillSink {
+        writer,
+        null_max,
+        tested,
+        untested,
+        ..
+    } = sink;
+    writer.finish()?;
+    crate::maxt::write_null_max(&spill_dir, &null_max)?;
+
+    let finalized = finalize(options, &spill_dir, &null_max, spec.side)?;
+    let seconds = started.elapsed().as_secs_f64();
+    let summary = ScanSummary {
+        features: stats.features,
+        tested,
+        untested: untested.iter().map(|(s, n)| (s.to_string(), *n)).collect(),
+        relabelings: b_total,
+        exact,
+        n_a: design.n_a,
+        n_b: design.n_b,
+        level_a: design.level_a.clone(),
+        level_b: design.level_b.clone(),
+        pi0: finalized.perm.pi0,
+        bh_hits: hits(&finalized.perm, Method::Bh),
+        fwer_hits_05: finalized.fwer_hits_05,
+        results_path: finalized.results_path.clone(),
+        seconds,
+        feature_relabelings_per_second: tested as f64 * b_total as f64
+            / stats.wall_seconds.max(1e-9),
+    };
+    write_run_record(options, &info, &design, &stats, &finalized, &summary)?;
+    Ok(summary)
+}
+
+fn validate(options: &ScanOptions) -> Result<()> {
+    if options.perms == 0 {
+        return Err(RiffleError::options(
+            "--perms 0: at least one relabelling is needed (1,000 or more is usual)",
+        ));
+    }
+    if options.threads == 0 {
+        return Err(RiffleError::options("--threads must be at least 1"));
+    }
+    if options.chunk_rows == Some(0) {
+        return Err(RiffleError::options("--chunk-rows must be at least 1"));
+    }
+    if options.memory_bytes < 16 << 20 {
+        return Err(RiffleError::options("--memory must be at least 16M"));
+    }
+    Ok(())
+}
+
+fn prepare_out_dir(out: &Path) -> Result<()> {
+    std::fs::create_dir_all(out).at(out)?;
+    let probe = out.join(format!(".riffle-write-test-{}", std::process::id()));
+    std::fs::write(&probe, b"").at(out)?;
+    std::fs::remove_file(&probe).at(out)?;
+    Ok(())
+}
+
+/// Chunk size and queue depth from the memory budget: half of it for the
+/// chunks in flight (raw f64, standardized f64 and f32 copies per value).
+fn pipeline_options(options: &ScanOptions, n: usize, b_total: usize) -> PipelineOptions {
+    let threads = options.threads.max(1);
+    let queue_depth = threads + 1;
+    let in_flight = (2 * queue_depth + 2 * threads) as u64;
+    let per_row = (n * 28 + 160) as u64;
+    let fixed = (n * b_total * 5) as u64;
+    let budget = (options.memory_bytes / 2).saturating_sub(fixed);
+    let derived = (budget / (in_flight * per_row)).clamp(64, 65_536) as usize;
+    PipelineOptions {
+        threads,
+        chunk_rows: options.chunk_rows.unwrap_or(derived),
+        queue_depth,
+    }
+}
+
+struct SpillSink {
+    writer: SpillWriter,
+    null_max: Vec<f64>,
+    source: PSource,
+    b_total: usize,
+    spec: TestSpec,
+    tested: u64,
+    untested: std::collections::BTreeMap<&'static str, u64>,
+}
+
+impl ChunkSink for SpillSink {
+    fn accept(&mut self, chunk: FinishedChunk) -> Result<()> {
+        for (m, v) in self.null_max.iter_mut().zip(&chunk.outcome.null_max) {
+            *m = m.max(*v);
+        }
+        let denominator = (self.b_total + 1) as f64;
+        for (id, f) in chunk.ids.iter().zip(&chunk.outcome.features) {
+            let p = f.prepared;
+            let tested = p.status == Status::Tested;
+            if tested {
+                self.tested += 1;
+            } else {
+                *self.untested.entry(p.status.reason()).or_default() += 1;
+            }
+            let record = Record {
+                effect: p.effect,
+                statistic: p.statistic,
+                p_param: p.p_param,
+                p_perm: if tested {
+                    (f.exceed + 1) as f64 / denominator
+                } else {
+                    f64::NAN
+                },
+                kernel_obs: p.kernel_obs,
+                exceed: f.exceed,
+                n_relabel: if tested { self.b_total as u64 } else { 0 },
+                n_a: self.spec.sizes.n_a as u32,
+                n_b: self.spec.sizes.n_b as u32,
+                status: p.status,
+                source: self.source,
+            };
+            self.writer.push(id, &record)?;
+        }
+        Ok(())
+    }
+}
+
+/// Which p-value of a spill record to adjust.
+#[derive(Clone, Copy)]
+enum PColumn {
+    Perm,
+    Param,
+}
+
+struct SpillPValues<'a> {
+    dir: &'a Path,
+    column: PColumn,
+}
+
+impl PValueSource for SpillPValues<'_> {
+    fn for_each(&mut self, f: &mut dyn FnMut(f64) -> Result<()>) -> Result<()> {
+        let mut reader = SpillReader::open_unchecked(self.dir)?;
+        while let Some(r) = reader.next_record()? {
+            let p = if r.status != Status::Tested {
+                f64::NAN
+            } else {
+                match self.column {
+                    PColumn::Perm => r.p_perm,
+                    PColumn::Param => r.p_param,
+                }
+            };
+            f(p)?;
+        }
+        Ok(())
+    }
+}
+
+pub const METHODS: [Method; 6] = [
+    Method::Bh,
+    Method::By,
+    Method::Storey,
+    Method::Holm,
+    Method::Hochberg,
+    Method::Bonferroni,
+];
+
+struct Finalized {
+    perm: AdjustSummary,
+    param: Option<AdjustSummary>,
+    fwer_hits_05: u64,
+    results_path: PathBuf,
+}
+
+fn hits(summary: &AdjustSummary, method: Method) -> [u64; 3] {
+    summary
+        .rejections
+        .iter()
+        .find(|(m, _)| *m == method)
+        .map(|(_, h)| *h)
+        .unwrap_or([0; 3])
+}
+
+/// Multiple testing over the spill and the results table, in feature order
+/// and bounded memory.
+fn finalize(
+    options: &ScanOptions,
+    spill_dir: &Path,
+    null_max: &[f64],
+    side: Side,
+) -> Result<Finalized> {
+    let _ = side;
+    SpillReader::open(spill_dir)?;
+    let adjust_options = AdjustOptions {
+        methods: METHODS.to_vec(),
+        lambda: options.storey_lambda,
+        memory_bytes: (options.memory_bytes / 4) as usize,
+        scratch_dir: spill_dir.to_path_buf(),
+        bootstrap_seed: options.seed,
+    };
+    // With --also-param, the model-based adjustments go to a scratch column
+    // file first, read back beside the permutation ones.
+    let mut param_columns = None;
+    let param_summary = if options.also_param {
+        let path = spill_dir.join("param-adjusted.bin");
+        let mut file = crate::columns::ColumnFileWriter::create(&path, METHODS.len())?;
+        let summary = multitest::adjust(
+            &mut SpillPValues {
+                dir: spill_dir,
+                column: PColumn::Param,
+            },
+            &adjust_options,
+            &mut |_, adjusted| file.push(adjusted),
+        )?;
+        file.finish()?;
+        param_columns = Some(crate::columns::ColumnFileReader::open(
+            &path,
+            METHODS.len(),
+        )?);
+        Some(summary)
+    } else {
+        None
+    };
+
+    let mut columns: Vec<(String, ColumnKind)> = vec![
+        ("feature".into(), ColumnKind::Text),
+        ("n_a".into(), ColumnKind::Count),
+        ("n_b".into(), ColumnKind::Count),
+        ("effect".into(), ColumnKind::Float),
+        ("statistic".into(), ColumnKind::Float),
+        ("p_param".into(), ColumnKind::Float),
+        ("p_perm".into(), ColumnKind::Float),
+        ("p_source".into(), ColumnKind::Text),
+        ("n_exceed".into(), ColumnKind::Count),
+        ("n_relabel".into(), ColumnKind::Count),
+    ];
+    columns.extend(
+        METHODS
+            .iter()
+            .map(|m| (m.name().to_string(), ColumnKind::Float)),
+    );
+    columns.push(("p_maxt_single".into(), ColumnKind::Float));
+    if options.also_param {
+        columns.extend(
+            METHODS
+                .iter()
+                .map(|m| (format!("{}_param", m.name()), ColumnKind::Float)),
+        );
+    }
+    columns.push(("note".into(), ColumnKind::Text));
+
+    let results_path = options.out.join(options.format.file_name(RESULTS_STEM));
+    let mut table = create_table(&results_path, options.format, &columns)?;
+    let maxt = crate::maxt::SingleStep::new(null_max);
+    let mut reader = SpillReader::open_unchecked(spill_dir)?;
+    let mut id = String::new();
+    let mut param_row = vec![f64::NAN; METHODS.len()];
+    let mut fwer_hits_05 = 0u64;
+    let perm_summary = multitest::adjust(
+        &mut SpillPValues {
+            dir: spill_dir,
+            column: PColumn::Perm,
+        },
+        &adjust_options,
+        &mut |_, adjusted| {
+            let record = reader
+                .next_record()?
+                .ok_or_else(|| RiffleError::Internal("spill ended early".into()))?;
+            reader.next_id(&mut id)?;
+            if let Some(cols) = param_columns.as_mut() {
+                cols.next_row(&mut param_row)?;
+            }
+            let tested = record.status == Status::Tested;
+            let p_maxt_single = if tested {
+                maxt.adjusted(record.kernel_obs)
+            } else {
+                f64::NAN
+            };
+            if p_maxt_single <= 0.05 {
+                fwer_hits_05 += 1;
+            }
+            let mut cells = vec![
+                Cell::Text(&id),
+                Cell::Count(record.n_a as u64),
+                Cell::Count(record.n_b as u64),
+                Cell::Float(record.effect),
+                Cell::Float(record.statistic),
+                Cell::Float(record.p_param),
+                Cell::Float(record.p_perm),
+                Cell::Text(if tested {
+                    record.source.name()
+                } else {
+                    "untested"
+                }),
+                Cell::Count(record.exceed),
+                Cell::Count(record.n_relabel),
+            ];
+            cells.extend(adjusted.iter().map(|&v| Cell::Float(v)));
+            cells.push(Cell::Float(p_maxt_single));
+            if options.also_param {
+                cells.extend(param_row.iter().map(|&v| Cell::Float(v)));
+            }
+            cells.push(Cell::Text(record.status.reason()));
+            table.write_row(&cells)
+        },
+    )?;
+    table.finish()?;
+    if options.also_param {
+        let _ = std::fs::remove_file(spill_dir.join("param-adjusted.bin"));
+    }
+    Ok(Finalized {
+        perm: perm_summary,
+        param: param_summary,
+        fwer_hits_05,
+        results_path,
+    })
+}
+
+fn write_run_record(
+    options: &ScanOptions,
+    info: &MatrixInfo,
+    design: &TwoGroupDesign,
+    stats: &PipelineStats,
+    finalized: &Finalized,
+    summary: &ScanSummary,
+) -> Result<()> {
+    let file_size = |p: &Path| std::fs::metadata(p).map(|m| m.len()).unwrap_or(0);
+    let summary_json = |s: &AdjustSummary| {
+        serde_json::json!({
+            "m": s.m,
+            "missing": s.n_missing,
+            "pi0": s.pi0,
+            "lambda": s.lambda,
+            "hits_at_0.01_0.05_0.1": s.rejections.iter()
+                .map(|(m, h)| (m.name().to_string(), serde_json::json!(h)))
+                .collect::<serde_json::Map<_, _>>(),
+        })
+    };
+    let record = serde_json::json!({
+        "riffle_version": env!("CARGO_PKG_VERSION"),
+        "command": std::env::args().collect::<Vec<_>>(),
+        "options": options,
+        "inputs": {
+            "matrix": {"path": info.path, "format": info.format, "bytes": file_size(&info.path),
+                       "features": info.n_features, "sample_columns": info.sample_columns.len()},
+            "samples": {"path": options.samples, "bytes": file_size(&options.samples)},
+        },
+        "design": design,
+        "relabelings": {"count": summary.relabelings, "exact": summary.exact,
+                        "generator": crate::design::relabel::GENERATOR, "seed": options.seed},
+        "features": {"total": summary.features, "tested": summary.tested,
+                     "untested": summary.untested.iter().cloned().collect::<std::collections::BTreeMap<_, _>>()},
+        "multiple_testing": {
+            "p_perm": summary_json(&finalized.perm),
+            "p_param": finalized.param.as_ref().map(summary_json),
+            "fwer_p_maxt_single_at_0.05": finalized.fwer_hits_05,
+        },
+        "timing": {"seconds": summary.seconds, "pipeline_seconds": stats.wall_seconds,
+                   "read_seconds": stats.read_seconds, "kernel_seconds": stats.kernel_seconds,
+                   "threads": options.threads, "cores": default_threads(), "chunks": stats.chunks,
+                   "feature_relabelings_per_second": summary.feature_relabelings_per_second},
+        "caution": crate::CAUTION,
+    });
+    let path = options.out.join(RUN_RECORD);
+    let temp = spill::temp_name(&path);
+    let text = serde_json::to_string_pretty(&record)
+        .map_err(|e| RiffleError::Internal(format!("run record: {e}")))?;
+    std::fs::write(&temp, text + "\n").at(&temp)?;
+    std::fs::rename(&temp, &path).at(&path)
+}
