@@ -103,7 +103,6 @@ pub const RESULTS_STEM: &str = "results";
 pub const RUN_RECORD: &str = "run.json";
 
 pub fn run_scan(options: &ScanOptions, stop: &AtomicBool) -> Result<ScanSummary> {
-    let started = Instant::now();
     validate(options)?;
     let sheet = SampleSheet::read(&options.samples, &options.sample_column)?;
     let levels = options
@@ -112,6 +111,19 @@ pub fn run_scan(options: &ScanOptions, stop: &AtomicBool) -> Result<ScanSummary>
         .map(|(a, b)| (a.as_str(), b.as_str()));
     let design = TwoGroupDesign::from_sheet(&sheet, &options.group, levels)?;
     let source = input::open_matrix(&options.matrix, &options.id_column, &design.samples)?;
+    run_scan_on(source, &design, options, stop)
+}
+
+/// The scan of an already opened source whose columns follow
+/// `design.samples`; `options.matrix` and `options.samples` are only recorded.
+pub fn run_scan_on(
+    source: Box<dyn input::FeatureSource>,
+    design: &TwoGroupDesign,
+    options: &ScanOptions,
+    stop: &AtomicBool,
+) -> Result<ScanSummary> {
+    let started = Instant::now();
+    validate(options)?;
     let info = source.info().clone();
 
     let relabel = Relabelings::draw(&design.labels, options.perms, options.seed);
@@ -183,7 +195,7 @@ pub fn run_scan(options: &ScanOptions, stop: &AtomicBool) -> Result<ScanSummary>
         feature_relabelings_per_second: tested as f64 * b_total as f64
             / stats.wall_seconds.max(1e-9),
     };
-    write_run_record(options, &info, &design, &stats, &finalized, &summary)?;
+    write_run_record(options, &info, design, &stats, &finalized, &summary)?;
     Ok(summary)
 }
 

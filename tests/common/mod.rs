@@ -1,0 +1,106 @@
+//! Shared helpers of the integration tests.
+#![allow(dead_code)]
+
+use std::collections::HashMap;
+use std::path::Path;
+use std::sync::atomic::AtomicBool;
+
+use riffle::design::TwoGroupDesign;
+use riffle::input::memory::MemorySource;
+use riffle::output::TableFormat;
+use riffle::scan::{run_scan_on, ScanOptions, ScanSummary};
+
+/// Deterministic normal draws for test data (Box–Muller on a 64-bit LCG
+/// from Knuth's MMIX constants); independent of riffle's own generators.
+pub struct TestRng(u64);
+
+impl TestRng {
+    pub fn new(seed: u64) -> Self {
+        TestRng(seed.wrapping_mul(0x9E37_79B9_7F4A_7C15) | 1)
+    }
+    pub fn uniform(&mut self) -> f64 {
+        self.0 = self
+            .0
+            .wrapping_mul(6_364_136_223_846_793_005)
+            .wrapping_add(1_442_695_040_888_963_407);
+        ((self.0 >> 11) as f64 + 0.5) / (1u64 << 53) as f64
+    }
+    pub fn normal(&mut self) -> f64 {
+        let r = (-2.0 * self.uniform().ln()).sqrt();
+        r * (std::f64::consts::TAU * self.uniform()).cos()
+    }
+}
+
+pub fn design(labels: &[u8]) -> TwoGroupDesign {
+    let n_b = labels.iter().filter(|&&l| l == 1).count();
+    TwoGroupDesign {
+        group_column: "group".into(),
+        level_a: "A".into(),
+        level_b: "B".into(),
+        samples: (0..labels.len()).map(|i| format!("s{i}")).collect(),
+        labels: labels.to_vec(),
+        n_a: labels.len() - n_b,
+        n_b,
+    }
+}
+
+pub fn options(out: &Path) -> ScanOptions {
+    let mut o = ScanOptions::new(Path::new("<memory>"), Path::new("<memory>"), "group", out);
+    o.format = TableFormat::Tsv;
+    o.threads = 2;
+    o.memory_bytes = 64 << 20;
+    o
+}
+
+/// Runs a scan over rows of values (one Vec per feature).
+pub fn scan_rows(rows: &[Vec<f64>], labels: &[u8], options: &ScanOptions) -> ScanSummary {
+    let d = design(labels);
+    let ids: Vec<String> = (0..rows.len()).map(|i| format!("f{i:05}")).collect();
+    let values: Vec<f64> = rows.iter().flatten().copied().collect();
+    let source = MemorySource::new(ids, d.samples.clone(), values).unwrap();
+    run_scan_on(Box::new(source), &d, options, &AtomicBool::new(false)).unwrap()
+}
+
+/// A TSV results table as columns of text.
+pub struct Table {
+    pub columns: HashMap<String, Vec<String>>,
+    pub rows: usize,
+}
+
+impl Table {
+    pub fn read(path: &Path) -> Table {
+        let text = std::fs::read_to_string(path).unwrap();
+        let mut lines = text.lines();
+        let header: Vec<String> = lines
+            .next()
+            .unwrap()
+            .split('\t')
+            .map(String::from)
+            .collect();
+        let mut columns: HashMap<String, Vec<String>> =
+            header.iter().map(|h| (h.clone(), Vec::new())).collect();
+        let mut rows = 0;
+        for line in lines {
+            for (h, cell) in header.iter().zip(line.split('\t')) {
+                columns.get_mut(h).unwrap().push(cell.to_string());
+            }
+            rows += 1;
+        }
+        Table { columns, rows }
+    }
+    pub fn f64s(&self, column: &str) -> Vec<f64> {
+        self.columns[column]
+            .iter()
+            .map(|c| {
+                if c == "NA" {
+                    f64::NAN
+                } else {
+                    c.parse().unwrap()
+                }
+            })
+            .collect()
+    }
+    pub fn text(&self, column: &str) -> &[String] {
+        &self.columns[column]
+    }
+}
