@@ -47,7 +47,7 @@ pub struct ScanArgs {
     #[arg(long)]
     pub group: String,
     /// Two levels of the group column, A,B: effects are B minus A.
-    #[arg(long, value_delimiter = ',', num_args = 2)]
+    #[arg(long, value_delimiter = ',')]
     pub levels: Option<Vec<String>>,
     #[arg(long, value_enum, default_value_t = TestKind::Welch)]
     pub test: TestKind,
@@ -186,6 +186,11 @@ pub fn main_with_args(args: impl IntoIterator<Item = std::ffi::OsString>) -> i32
 fn dispatch(cli: Cli) -> Result<()> {
     match cli.command {
         Command::Scan(args) => {
+            if args.levels.as_ref().is_some_and(|l| l.len() != 2) {
+                return Err(RiffleError::options(
+                    "--levels takes exactly two levels, A,B (effects are B minus A)",
+                ));
+            }
             let options = args.to_options();
             let summary = scan::run_scan(&options, &STOP)?;
             if !options.quiet {

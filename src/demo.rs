@@ -18,7 +18,7 @@ pub fn run_demo(out: &Path, threads: Option<usize>, stop: &AtomicBool) -> Result
     let sheet = inputs.join("leaf_heat_samples.tsv");
     std::fs::write(&matrix, DEMO_MATRIX).at(&matrix)?;
     std::fs::write(&sheet, DEMO_SHEET).at(&sheet)?;
-    let mut options = ScanOptions::new(&matrix, &sheet, "condition", out);
+    let mut options = ScanOptions::new(&matrix, &sheet, "group", out);
     options.levels = Some(("control".into(), "heat".into()));
     options.test = TestKind::Welch;
     options.perms = 5_000;

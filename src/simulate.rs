@@ -32,10 +32,10 @@ pub struct SimulateArgs {
     #[arg(long, default_value_t = 10_000)]
     pub features: u64,
     /// Samples in each group, A,B.
-    #[arg(long, value_delimiter = ',', num_args = 2, default_values_t = [24usize, 24])]
+    #[arg(long, value_delimiter = ',', default_values_t = [24usize, 24])]
     pub group_sizes: Vec<usize>,
     /// Names of the two groups, A,B (sample names are <level>_<number>).
-    #[arg(long, value_delimiter = ',', num_args = 2, default_values_t = ["A".to_string(), "B".to_string()])]
+    #[arg(long, value_delimiter = ',', default_values_t = ["A".to_string(), "B".to_string()])]
     pub levels: Vec<String>,
     /// Share of features with a planted shift.
     #[arg(long, default_value_t = 0.01)]
@@ -100,6 +100,11 @@ impl Normals {
 pub fn run_simulate(args: &SimulateArgs) -> Result<()> {
     if !(0.0..=1.0).contains(&args.effect_fraction) {
         return Err(RiffleError::options("--effect-fraction must lie in [0, 1]"));
+    }
+    if args.group_sizes.len() != 2 || args.levels.len() != 2 {
+        return Err(RiffleError::options(
+            "--group-sizes and --levels each take two values, A,B",
+        ));
     }
     if args.group_sizes.iter().any(|&n| n < 2) {
         return Err(RiffleError::options(
