@@ -114,10 +114,12 @@ impl Kernel {
         s.band.clear();
         for (k, &r) in s.tested.iter().enumerate() {
             let z = &s.z64[r * n..(r + 1) * n];
-            for i in 0..n {
-                s.z32[k * n + i] = z[i] as f32;
-                if squares {
-                    s.sq32[k * n + i] = (z[i] * z[i]) as f32;
+            for (dst, &v) in s.z32[k * n..(k + 1) * n].iter_mut().zip(z) {
+                *dst = v as f32;
+            }
+            if squares {
+                for (dst, &v) in s.sq32[k * n..(k + 1) * n].iter_mut().zip(z) {
+                    *dst = (v * v) as f32;
                 }
             }
             s.band.push(self.error_band(&features[r].prepared));

@@ -348,7 +348,7 @@ mod tests {
             n_relabel: 99,
             n_a: 4,
             n_b: 5,
-            status: if i % 7 == 0 {
+            status: if i.is_multiple_of(7) {
                 Status::Constant
             } else {
                 Status::Tested

@@ -1,0 +1,126 @@
+#!/usr/bin/env python3
+"""Cross-check riffle's two-group tests with scipy.
+
+Usage: check_scipy.py PATH/TO/riffle
+
+Writes small matrices (4 vs 5 samples, with and without ties) as Arrow IPC
+files, runs `riffle scan` for every test and side, and compares
+- p_perm with scipy.stats.permutation_test(..., n_resamples=np.inf), i.e. the
+  exact permutation p-value over all 126 splits, to 1e-12;
+- p_param with scipy.stats.ttest_ind (equal_var False/True) and
+  scipy.stats.mannwhitneyu (asymptotic, continuity-corrected), to 1e-10.
+Exits 0 when everything agrees, 1 otherwise.
+"""
+
+import csv
+import math
+import subprocess
+import sys
+import tempfile
+from pathlib import Path
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.ipc as ipc
+from scipy import stats
+
+RIFFLE = sys.argv[1]
+N_A, N_B = 4, 5
+
+
+def features():
+    rng = np.random.default_rng(20261202)
+    group_b = np.r_[np.zeros(N_A), np.ones(N_B)]
+    rows = [rng.normal(size=N_A + N_B) + 0.6 * k * group_b for k in range(8)]
+    rows.append(np.array([1, 2, 2, 1, 3, 1, 2, 2, 3], dtype=float))
+    rows.append(np.array([0, 1, 1, 0, 1, 0, 0, 1, 1], dtype=float))
+    rows.append(np.round(rng.normal(size=N_A + N_B) * 2))
+    return rows
+
+
+def write_inputs(folder, rows):
+    samples = [f"s{i + 1}" for i in range(N_A + N_B)]
+    columns = {"feature": pa.array([f"f{k}" for k in range(len(rows))])}
+    for i, s in enumerate(samples):
+        columns[s] = pa.array([float(r[i]) for r in rows], type=pa.float64())
+    table = pa.table(columns)
+    matrix = folder / "m.arrow"
+    with ipc.new_file(str(matrix), table.schema) as writer:
+        writer.write_table(table)
+    sheet = folder / "sheet.tsv"
+    lines = ["sample\tgroup"] + [f"{s}\t{'A' if i < N_A else 'B'}" for i, s in enumerate(samples)]
+    sheet.write_text("\n".join(lines) + "\n")
+    return matrix, sheet
+
+
+def run_riffle(matrix, sheet, out, test, side):
+    subprocess.run(
+        [RIFFLE, "scan", "--matrix", str(matrix), "--samples", str(sheet), "--group", "group",
+         "--levels", "A,B", "--test", test, "--side", side, "--perms", "1000", "--seed", "5",
+         "--out", str(out), "--format", "tsv", "--quiet"],
+        check=True,
+    )
+    with open(out / "results.tsv", newline="") as f:
+        return list(csv.DictReader(f, delimiter="\t"))
+
+
+def signed_statistic(test):
+    if test == "welch":
+        return lambda x, y, axis: stats.ttest_ind(x, y, equal_var=False, axis=axis).statistic
+    if test == "student":
+        return lambda x, y, axis: stats.ttest_ind(x, y, equal_var=True, axis=axis).statistic
+    if test == "mean-diff":
+        return lambda x, y, axis: np.mean(x, axis=axis) - np.mean(y, axis=axis)
+    # Rank sum of B, centred at its null mean.
+    return lambda x, y, axis: stats.mannwhitneyu(x, y, axis=axis, method="asymptotic").statistic - N_A * N_B / 2
+
+
+def scipy_perm_p(test, side, b, a):
+    stat = signed_statistic(test)
+    if side == "both":
+        statistic, alternative = (lambda x, y, axis: np.abs(stat(x, y, axis))), "greater"
+    else:
+        statistic, alternative = stat, side
+    res = stats.permutation_test((b, a), statistic, permutation_type="independent",
+                                 n_resamples=np.inf, alternative=alternative, vectorized=True)
+    return res.pvalue
+
+
+def scipy_param_p(test, side, b, a):
+    alternative = "two-sided" if side == "both" else side
+    if test == "welch":
+        return stats.ttest_ind(b, a, equal_var=False, alternative=alternative).pvalue
+    if test in ("student", "mean-diff"):
+        return stats.ttest_ind(b, a, equal_var=True, alternative=alternative).pvalue
+    return stats.mannwhitneyu(b, a, use_continuity=True, alternative=alternative,
+                              method="asymptotic").pvalue
+
+
+def main():
+    rows = features()
+    failures = 0
+    checked = 0
+    with tempfile.TemporaryDirectory() as tmp:
+        folder = Path(tmp)
+        matrix, sheet = write_inputs(folder, rows)
+        for test in ["welch", "student", "mean-diff", "rank-sum"]:
+            for side in ["both", "greater", "less"]:
+                results = run_riffle(matrix, sheet, folder / f"out-{test}-{side}", test, side)
+                worst_perm = worst_param = 0.0
+                for k, row in enumerate(rows):
+                    a, b = row[:N_A], row[N_A:]
+                    p_perm = float(results[k]["p_perm"])
+                    p_param = float(results[k]["p_param"])
+                    worst_perm = max(worst_perm, abs(p_perm - scipy_perm_p(test, side, b, a)))
+                    worst_param = max(worst_param, abs(p_param - scipy_param_p(test, side, b, a)))
+                    checked += 1
+                ok = worst_perm <= 1e-12 and worst_param <= 1e-10
+                failures += not ok
+                print(f"{'ok ' if ok else 'BAD'} {test:9} {side:7} max|p_perm - scipy| = {worst_perm:.2e}"
+                      f"  max|p_param - scipy| = {worst_param:.2e}")
+    print(f"scipy cross-check: {checked} feature-tests compared, {failures} configurations failed")
+    return 1 if failures else 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
