@@ -9,6 +9,7 @@
 
 use crate::design::Relabelings;
 use crate::stats::prepare::{PrepScratch, Prepared, Status, TestSpec};
+
 use crate::stats::TestKind;
 
 /// Features per GEMM tile (rows of the left operand).
@@ -40,6 +41,8 @@ pub struct FeatureOutcome {
 pub struct ChunkOutcome {
     pub features: Vec<FeatureOutcome>,
     pub null_max: Vec<f64>,
+    /// Standardized rows (`n` values each) of the tested features, in order.
+    pub standardized: Vec<f64>,
 }
 
 /// Per-worker reusable buffers.
@@ -47,12 +50,9 @@ pub struct ChunkOutcome {
 pub struct KernelScratch {
     prep: PrepScratch,
     z64: Vec<f64>,
-    z32: Vec<f32>,
-    sq32: Vec<f32>,
-    sums: Vec<f32>,
-    squares: Vec<f32>,
     tested: Vec<usize>,
-    band: Vec<f64>,
+    rows: RowBuffers,
+    tiles: TileBuffers,
 }
 
 impl Kernel {
@@ -103,72 +103,180 @@ impl Kernel {
                 exceed: 0,
             });
         }
+        // Tested rows packed together, in order.
+        let mut standardized = Vec::with_capacity(s.tested.len() * n);
+        for &r in &s.tested {
+            standardized.extend_from_slice(&s.z64[r * n..(r + 1) * n]);
+        }
         let mut null_max = vec![f64::NEG_INFINITY; b_total];
         let t = s.tested.len();
         if t == 0 || b_total == 0 {
-            return ChunkOutcome { features, null_max };
+            return ChunkOutcome {
+                features,
+                null_max,
+                standardized,
+            };
         }
-        let squares = self.spec.test.needs_squares();
-        s.z32.resize(t * n, 0.0);
-        s.sq32.resize(if squares { t * n } else { 0 }, 0.0);
-        s.band.clear();
+        let obs: Vec<f64> = s
+            .tested
+            .iter()
+            .map(|&r| features[r].prepared.kernel_obs)
+            .collect();
+        let rows_view = self.load_rows(&standardized, &obs, &mut s.rows);
+        let mut floors = vec![f32::NEG_INFINITY; b_total];
+        let mut exceed = vec![0u64; t];
+        self.for_each_tile_row(&rows_view, 0, b_total, &mut s.tiles, |k, col0, tile| {
+            let z = &standardized[k * n..(k + 1) * n];
+            let row = RowCheck::new(obs[k], rows_view.band[k]);
+            exceed[k] += self.count_row(
+                tile,
+                &row,
+                z,
+                col0,
+                &mut floors[col0..col0 + tile.len()],
+                &mut null_max[col0..col0 + tile.len()],
+                None,
+            );
+        });
         for (k, &r) in s.tested.iter().enumerate() {
-            let z = &s.z64[r * n..(r + 1) * n];
-            for (dst, &v) in s.z32[k * n..(k + 1) * n].iter_mut().zip(z) {
-                *dst = v as f32;
-            }
-            if squares {
-                for (dst, &v) in s.sq32[k * n..(k + 1) * n].iter_mut().zip(z) {
-                    *dst = (v * v) as f32;
-                }
-            }
-            s.band.push(self.error_band(&features[r].prepared));
+            features[r].exceed = exceed[k];
         }
-        let chunk_band = s.band.iter().cloned().fold(0.0, f64::max);
-        s.sums.resize(ROW_TILE * COL_TILE, 0.0);
-        s.squares
-            .resize(if squares { ROW_TILE * COL_TILE } else { 0 }, 0.0);
-        let mut max_floor = vec![f32::NEG_INFINITY; b_total];
+        ChunkOutcome {
+            features,
+            null_max,
+            standardized,
+        }
+    }
 
-        for row0 in (0..t).step_by(ROW_TILE) {
-            let rt = ROW_TILE.min(t - row0);
-            for col0 in (0..b_total).step_by(COL_TILE) {
-                let ct = COL_TILE.min(b_total - col0);
-                self.multiply(&s.z32[row0 * n..], rt, col0, ct, &mut s.sums);
+    /// Rank-order pass over relabelings `state.col0..state.col0 + state.cols`:
+    /// rows come in ascending order of their observed statistic; for each
+    /// row, `exceed` counts relabelings at least as extreme as it, and
+    /// `reached` counts relabelings whose running maximum over this and all
+    /// earlier rows reaches it (the successive maxima of step-down maxT).
+    pub fn rank_rows(
+        &self,
+        standardized: &[f64],
+        obs: &[f64],
+        state: &mut RankState,
+        exceed: &mut [u64],
+        reached: &mut [u64],
+        scratch: &mut KernelScratch,
+    ) {
+        let n = self.observed.len();
+        let rows_view = self.load_rows(standardized, obs, &mut scratch.rows);
+        let base = state.col0;
+        self.for_each_tile_row(
+            &rows_view,
+            state.col0,
+            state.cols,
+            &mut scratch.tiles,
+            |k, col0, tile| {
+                let z = &standardized[k * n..(k + 1) * n];
+                let row = RowCheck::new(obs[k], rows_view.band[k]);
+                let range = col0 - base..col0 - base + tile.len();
+                let mut hits = 0u64;
+                exceed[k] += self.count_row(
+                    tile,
+                    &row,
+                    z,
+                    col0,
+                    &mut state.floors[range.clone()],
+                    &mut state.maxima[range],
+                    Some(&mut hits),
+                );
+                reached[k] += hits;
+            },
+        );
+    }
+
+    /// f32 copies (and squares, for Welch) and error bands of packed rows.
+    fn load_rows<'a>(
+        &self,
+        standardized: &[f64],
+        obs: &[f64],
+        buffers: &'a mut RowBuffers,
+    ) -> RowsView<'a> {
+        let squares = self.spec.test.needs_squares();
+        buffers.z32.clear();
+        buffers.z32.extend(standardized.iter().map(|&v| v as f32));
+        buffers.sq32.clear();
+        if squares {
+            buffers
+                .sq32
+                .extend(standardized.iter().map(|&v| (v * v) as f32));
+        }
+        let n = self.observed.len();
+        buffers.band.clear();
+        for (k, &o) in obs.iter().enumerate() {
+            let abs_sum: f64 = standardized[k * n..(k + 1) * n]
+                .iter()
+                .map(|v| v.abs())
+                .sum();
+            buffers.band.push(self.error_band(o, abs_sum));
+        }
+        RowsView {
+            rows: obs.len(),
+            z32: &buffers.z32,
+            sq32: &buffers.sq32,
+            band: &buffers.band,
+        }
+    }
+
+    /// GEMM tiles over rows x relabelings `col_start..col_start + cols`;
+    /// calls `visit(row, first_column, oriented_statistics)` for every row
+    /// of every tile, rows in ascending order within each column range.
+    fn for_each_tile_row(
+        &self,
+        rows: &RowsView<'_>,
+        col_start: usize,
+        cols: usize,
+        tiles: &mut TileBuffers,
+        mut visit: impl FnMut(usize, usize, &[f32]),
+    ) {
+        let n = self.observed.len();
+        let squares = self.spec.test.needs_squares();
+        tiles.sums.resize(ROW_TILE * COL_TILE, 0.0);
+        tiles
+            .squares
+            .resize(if squares { ROW_TILE * COL_TILE } else { 0 }, 0.0);
+        let col_end = col_start + cols;
+        for row0 in (0..rows.rows).step_by(ROW_TILE) {
+            let rt = ROW_TILE.min(rows.rows - row0);
+            for col0 in (col_start..col_end).step_by(COL_TILE) {
+                let ct = COL_TILE.min(col_end - col0);
+                self.multiply(&rows.z32[row0 * n..], rt, col0, ct, &mut tiles.sums);
                 if squares {
-                    self.multiply(&s.sq32[row0 * n..], rt, col0, ct, &mut s.squares);
+                    self.multiply(&rows.sq32[row0 * n..], rt, col0, ct, &mut tiles.squares);
                 }
                 for i in 0..rt {
-                    let k = row0 + i;
-                    let r = s.tested[k];
-                    let tile = &mut s.sums[i * ct..(i + 1) * ct];
+                    let tile = &mut tiles.sums[i * ct..(i + 1) * ct];
                     if squares {
-                        self.welch_tile(tile, &s.squares[i * ct..(i + 1) * ct]);
+                        self.welch_tile(tile, &tiles.squares[i * ct..(i + 1) * ct]);
                     } else {
                         let side = self.spec.side;
                         tile.iter_mut().for_each(|v| *v = side.orient32(*v));
                     }
-                    let obs = features[r].prepared.kernel_obs;
-                    let band = s.band[k];
-                    let z = &s.z64[r * n..(r + 1) * n];
-                    let floors = &mut max_floor[col0..col0 + ct];
-                    let maxima = &mut null_max[col0..col0 + ct];
-                    features[r].exceed +=
-                        self.count_row(tile, obs, band, chunk_band, z, col0, floors, maxima);
+                    visit(row0 + i, col0, tile);
                 }
             }
         }
-        ChunkOutcome { features, null_max }
     }
 
-    /// Largest possible |f32 - f64| of a kernel statistic for this feature.
-    fn error_band(&self, p: &Prepared) -> f64 {
+    /// Largest possible |f32 - f64| of a kernel statistic for a feature.
+    fn error_band(&self, kernel_obs: f64, abs_sum: f64) -> f64 {
         let n = self.observed.len() as f64;
         match self.spec.test {
+            TestKind::Welch => 1e-3 * (1.0 + kernel_obs.abs()),
             // Group sums: rounding of each z to f32 plus n accumulations.
-            TestKind::Welch => 1e-3 * (1.0 + p.kernel_obs.abs()),
-            _ => 2.0 * (n + 2.0) * F32_UNIT * p.abs_sum + 1e-12,
+            _ => 2.0 * (n + 2.0) * F32_UNIT * abs_sum + 1e-12,
         }
+    }
+
+    /// An upper bound of `error_band` over all features (sum |z| is at most
+    /// sqrt(n (n - 1)) for a standardized row).
+    fn global_band(&self) -> f64 {
+        let n = self.observed.len() as f64;
+        2.0 * (n + 2.0) * F32_UNIT * (n * (n - 1.0)).sqrt() + 1e-12
     }
 
     /// An f32 value below this cannot belong to an f64 statistic above `max`.
@@ -228,58 +336,116 @@ impl Kernel {
         }
     }
 
-    /// Counts relabelings at least as extreme as `obs` in one row of a tile
-    /// and folds the row into the per-relabelling maxima.
+    /// Counts relabelings at least as extreme as the row's observed
+    /// statistic in one row of a tile, and folds the row into the running
+    /// per-relabelling maxima; with `reached`, also counts relabelings whose
+    /// maximum (after this row) reaches the observed statistic.
     #[allow(clippy::too_many_arguments)]
     fn count_row(
         &self,
         tile: &[f32],
-        obs: f64,
-        band: f64,
-        chunk_band: f64,
+        row: &RowCheck,
         z: &[f64],
         col0: usize,
         floors: &mut [f32],
         maxima: &mut [f64],
+        reached: Option<&mut u64>,
     ) -> u64 {
-        let above = (obs + band) as f32;
-        let below = (obs - band) as f32;
         // Fast pass: clear exceedances, and whether anything needs f64.
         let mut clear = 0u32;
         let mut unsure = false;
         for (&v, &floor) in tile.iter().zip(floors.iter()) {
-            clear += u32::from(v > above);
-            unsure |= !(v > above || v < below) | (v > floor);
+            clear += u32::from(v > row.above);
+            unsure |= !(v > row.above || v < row.below) | (v > floor);
         }
-        if !unsure {
-            return u64::from(clear);
+        if unsure {
+            clear = 0;
         }
-        let mut count = 0u64;
-        let tie_tol = tie_tolerance(obs);
-        for (j, &v) in tile.iter().enumerate() {
-            let exact = if v > above {
-                count += 1;
-                None
-            } else if v < below {
-                None
-            } else {
-                let e = self.spec.kernel_stat(z, self.relabel.row(col0 + j));
-                if e >= obs - tie_tol {
+        let mut count = u64::from(clear);
+        let exact_at = |j: usize| self.spec.kernel_stat(z, self.relabel.row(col0 + j));
+        if unsure {
+            for (j, &v) in tile.iter().enumerate() {
+                let exact = if v > row.above {
                     count += 1;
-                }
-                Some(e)
-            };
-            if v > floors[j] || v.is_nan() {
-                let e =
-                    exact.unwrap_or_else(|| self.spec.kernel_stat(z, self.relabel.row(col0 + j)));
-                if e > maxima[j] {
-                    maxima[j] = e;
-                    floors[j] = self.max_floor(e, chunk_band);
+                    None
+                } else if v < row.below {
+                    None
+                } else {
+                    let e = exact_at(j);
+                    count += u64::from(e >= row.threshold);
+                    Some(e)
+                };
+                if v > floors[j] || v.is_nan() {
+                    let e = exact.unwrap_or_else(|| exact_at(j));
+                    if e > maxima[j] {
+                        maxima[j] = e;
+                        floors[j] = self.max_floor(e, self.global_band());
+                    }
                 }
             }
         }
+        if let Some(reached) = reached {
+            *reached += maxima.iter().filter(|&&m| m >= row.threshold).count() as u64;
+        }
         count
     }
+}
+
+/// The observed statistic of a row and its f32 decision bounds.
+struct RowCheck {
+    above: f32,
+    below: f32,
+    threshold: f64,
+}
+
+impl RowCheck {
+    fn new(obs: f64, band: f64) -> Self {
+        RowCheck {
+            above: (obs + band) as f32,
+            below: (obs - band) as f32,
+            threshold: obs - tie_tolerance(obs),
+        }
+    }
+}
+
+/// Running maxima of a rank-order pass over one range of relabelings.
+pub struct RankState {
+    pub col0: usize,
+    pub cols: usize,
+    /// Exact (f64) running maximum per relabelling.
+    pub maxima: Vec<f64>,
+    floors: Vec<f32>,
+}
+
+impl RankState {
+    pub fn new(col0: usize, cols: usize) -> Self {
+        RankState {
+            col0,
+            cols,
+            maxima: vec![f64::NEG_INFINITY; cols],
+            floors: vec![f32::NEG_INFINITY; cols],
+        }
+    }
+}
+
+#[derive(Default)]
+struct RowBuffers {
+    z32: Vec<f32>,
+    sq32: Vec<f32>,
+    band: Vec<f64>,
+}
+
+#[derive(Default)]
+struct TileBuffers {
+    sums: Vec<f32>,
+    squares: Vec<f32>,
+}
+
+struct RowsView<'a> {
+    rows: usize,
+    z32: &'a [f32],
+    sq32: &'a [f32],
+    band: &'a [f64],
 }
 
 /// Statistics this close to the observed one count as reached: equal

@@ -276,6 +276,7 @@ impl ChunkSink for SpillSink {
                     f64::NAN
                 },
                 kernel_obs: p.kernel_obs,
+                p_maxt: f64::NAN,
                 exceed: f.exceed,
                 n_relabel: if tested { self.b_total as u64 } else { 0 },
                 n_a: self.spec.sizes.n_a as u32,

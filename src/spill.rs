@@ -25,7 +25,7 @@ const VERSION: u32 = 1;
 const HEADER_LEN: u64 = 32;
 const TRAILER_LEN: u64 = 16;
 const TRAILER_MAGIC: &[u8; 4] = b"RFEN";
-pub const RECORD_LEN: usize = 72;
+pub const RECORD_LEN: usize = 80;
 
 /// Where a feature's permutation p-value came from.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -60,6 +60,8 @@ pub struct Record {
     pub p_param: f64,
     pub p_perm: f64,
     pub kernel_obs: f64,
+    /// Step-down maxT adjusted p-value (NaN when not computed).
+    pub p_maxt: f64,
     pub exceed: u64,
     pub n_relabel: u64,
     pub n_a: u32,
@@ -82,6 +84,7 @@ impl Record {
         out[64] = self.status as u8;
         out[65] = self.source as u8;
         out[66..72].fill(0);
+        out[72..80].copy_from_slice(&self.p_maxt.to_le_bytes());
     }
 
     fn decode(b: &[u8; RECORD_LEN]) -> Option<Self> {
@@ -94,6 +97,7 @@ impl Record {
             p_param: f(16),
             p_perm: f(24),
             kernel_obs: f(32),
+            p_maxt: f(72),
             exceed: u(40),
             n_relabel: u(48),
             n_a: w(56),
@@ -344,6 +348,7 @@ mod tests {
             p_param: 0.01,
             p_perm: (i + 1) as f64 / 100.0,
             kernel_obs: 1.5,
+            p_maxt: f64::NAN,
             exceed: i,
             n_relabel: 99,
             n_a: 4,
