@@ -9,7 +9,7 @@ use clap::{Args, Parser, Subcommand};
 use crate::error::{exit_code, Result, RiffleError};
 use crate::multitest::LambdaChoice;
 use crate::output::TableFormat;
-use crate::scan::{self, ScanOptions};
+use crate::scan::{self, MaxtMode, ScanOptions};
 use crate::stats::{Side, TestKind};
 
 #[derive(Parser, Debug)]
@@ -85,6 +85,10 @@ pub struct ScanArgs {
     /// Storey's lambda: a number in [0, 1), or "bootstrap".
     #[arg(long, default_value = "0.5", value_parser = parse_lambda)]
     pub storey_lambda: LambdaChoice,
+    /// Family-wise error by maxT: step-down (p_maxt and p_maxt_single; adds
+    /// a rank-order pass) or single-step only (p_maxt_single).
+    #[arg(long, value_enum, default_value_t = MaxtMode::StepDown)]
+    pub maxt: MaxtMode,
     /// No progress output.
     #[arg(long)]
     pub quiet: bool,
@@ -151,6 +155,7 @@ impl ScanArgs {
             format: self.format,
             also_param: self.also_param,
             storey_lambda: self.storey_lambda,
+            maxt: self.maxt,
             quiet: self.quiet,
         }
     }

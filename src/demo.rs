@@ -38,7 +38,7 @@ pub fn summary_text(s: &ScanSummary) -> String {
     let untested: u64 = s.untested.iter().map(|(_, n)| n).sum();
     format!(
         "{} features ({} tested, {} untested), {} vs {} ({} vs {} samples), {} relabelings{}\n\
-         q_bh <= 0.01 / 0.05 / 0.1: {} / {} / {};  FWER (single-step maxT) <= 0.05: {};  pi0 = {:.3}\n\
+         q_bh <= 0.01 / 0.05 / 0.1: {} / {} / {};  FWER (maxT) <= 0.05: {};  pi0 = {:.3}\n\
          {:.1} s, {:.3e} feature-relabelings/s\n\
          results: {}\n\
          {}",
@@ -50,7 +50,11 @@ pub fn summary_text(s: &ScanSummary) -> String {
         s.n_b,
         s.n_a,
         s.relabelings,
-        if s.exact { " (all of them: exact p-values)" } else { "" },
+        if s.exact {
+            " (all of them: exact p-values)"
+        } else {
+            ""
+        },
         s.bh_hits[0],
         s.bh_hits[1],
         s.bh_hits[2],

@@ -81,8 +81,15 @@ impl Kernel {
         &self.spec
     }
 
-    /// Runs one chunk: `raw` is `rows x n` row-major.
-    pub fn run_chunk(&self, raw: &[f64], rows: usize, s: &mut KernelScratch) -> ChunkOutcome {
+    /// Runs one chunk: `raw` is `rows x n` row-major. Without `count`, only
+    /// screens and standardizes.
+    pub fn run_chunk(
+        &self,
+        raw: &[f64],
+        rows: usize,
+        count: bool,
+        s: &mut KernelScratch,
+    ) -> ChunkOutcome {
         let n = self.observed.len();
         let b_total = self.relabel.count;
         s.z64.resize(rows * n, 0.0);
@@ -110,7 +117,7 @@ impl Kernel {
         }
         let mut null_max = vec![f64::NEG_INFINITY; b_total];
         let t = s.tested.len();
-        if t == 0 || b_total == 0 {
+        if t == 0 || b_total == 0 || !count {
             return ChunkOutcome {
                 features,
                 null_max,

@@ -24,6 +24,8 @@ pub mod scan;
 pub mod simulate;
 pub mod spill;
 pub mod stats;
+pub mod stepdown;
+pub mod tail;
 
 /// Printed in the README, the run record and every report.
 pub const CAUTION: &str = "These are statistical screening results. They must be confirmed by \

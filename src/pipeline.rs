@@ -34,6 +34,8 @@ pub struct PipelineOptions {
     pub chunk_rows: usize,
     /// Chunks that may wait in each queue.
     pub queue_depth: usize,
+    /// Only screen and standardize (the relabelings run in a later pass).
+    pub prepare_only: bool,
 }
 
 #[derive(Debug, Clone, Default)]
@@ -65,6 +67,7 @@ pub fn run(
     let (work_tx, work_rx) = bounded::<(u64, FeatureBlock)>(depth);
     let (done_tx, done_rx) = bounded::<Result<(u64, FinishedChunk, f64)>>(depth + threads);
     let failed = Arc::new(AtomicBool::new(false));
+    let count = !options.prepare_only;
 
     std::thread::scope(|scope| -> Result<PipelineStats> {
         let reader_failed = failed.clone();
@@ -108,7 +111,8 @@ pub fn run(
                         continue;
                     }
                     let t0 = Instant::now();
-                    let outcome = kernel.run_chunk(&block.values, block.rows(), &mut scratch);
+                    let outcome =
+                        kernel.run_chunk(&block.values, block.rows(), count, &mut scratch);
                     let seconds = t0.elapsed().as_secs_f64();
                     let chunk = FinishedChunk {
                         first_index: block.first_index,

@@ -18,6 +18,7 @@ use crate::progress::ProgressReporter;
 use crate::spill::{self, PSource, Record, SpillReader, SpillWriter};
 use crate::stats::prepare::{Status, TestSpec};
 use crate::stats::{Side, Sizes, TestKind};
+use crate::stepdown::{rank_pass, reverse_and_scatter, RowSorter};
 
 /// Everything that defines a scan. Serialized into `run.json`.
 #[derive(Debug, Clone, serde::Serialize)]
@@ -41,7 +42,17 @@ pub struct ScanOptions {
     /// Also adjust the model-based p-values.
     pub also_param: bool,
     pub storey_lambda: LambdaChoice,
+    /// Family-wise error: step-down maxT (adds a rank-order pass) or only
+    /// single-step.
+    pub maxt: MaxtMode,
     pub quiet: bool,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize, clap::ValueEnum)]
+#[serde(rename_all = "kebab-case")]
+pub enum MaxtMode {
+    StepDown,
+    Single,
 }
 
 impl ScanOptions {
@@ -65,6 +76,7 @@ impl ScanOptions {
             format: TableFormat::Parquet,
             also_param: false,
             storey_lambda: LambdaChoice::Fixed(0.5),
+            maxt: MaxtMode::StepDown,
             quiet: true,
         }
     }
@@ -141,7 +153,18 @@ pub fn run_scan_on(
 
     prepare_out_dir(&options.out)?;
     let spill_dir = options.out.join(SPILL_DIR);
-    let pipeline_options = pipeline_options(options, design.n(), b_total);
+    let step_down = options.maxt == MaxtMode::StepDown;
+    let mut pipeline_options = pipeline_options(options, design.n(), b_total);
+    pipeline_options.prepare_only = step_down;
+    let sorter = if step_down {
+        Some(RowSorter::new(
+            &spill_dir.join("rank-runs"),
+            design.n(),
+            options.memory_bytes / 4,
+        )?)
+    } else {
+        None
+    };
     let mut sink = SpillSink {
         writer: SpillWriter::create(&spill_dir)?,
         null_max: vec![f64::NEG_INFINITY; b_total],
@@ -154,11 +177,17 @@ pub fn run_scan_on(
         spec,
         tested: 0,
         untested: Default::default(),
+        sorter,
+        n: design.n(),
     };
-    let mut reporter = ProgressReporter::new(info.n_features, options.quiet, "scan");
-    let stats = pipeline::run(
+    let mut reporter = ProgressReporter::new(
+        info.n_features,
+        options.quiet,
+        if step_down { "standardize" } else { "scan" },
+    );
+    let mut stats = pipeline::run(
         source,
-        kernel,
+        kernel.clone(),
         &pipeline_options,
         stop,
         &mut sink,
@@ -167,12 +196,27 @@ pub fn run_scan_on(
     reporter.finish();
     let SpillSink {
         writer,
-        null_max,
+        mut null_max,
         tested,
         untested,
+        sorter,
         ..
     } = sink;
     writer.finish()?;
+    if let Some(sorter) = sorter {
+        let rank_started = Instant::now();
+        null_max = run_step_down(
+            kernel,
+            sorter,
+            &pipeline_options,
+            &spill_dir,
+            tested,
+            stats.features,
+            options,
+            stop,
+        )?;
+        stats.wall_seconds += rank_started.elapsed().as_secs_f64();
+    }
     crate::maxt::write_null_max(&spill_dir, &null_max)?;
 
     let finalized = finalize(options, &spill_dir, &null_max, spec.side)?;
@@ -239,11 +283,15 @@ fn pipeline_options(options: &ScanOptions, n: usize, b_total: usize) -> Pipeline
         threads,
         chunk_rows: options.chunk_rows.unwrap_or(derived),
         queue_depth,
+        prepare_only: false,
     }
 }
 
 struct SpillSink {
     writer: SpillWriter,
+    /// Step-down mode: standardized rows go here for the rank pass.
+    sorter: Option<RowSorter>,
+    n: usize,
     null_max: Vec<f64>,
     source: PSource,
     b_total: usize,
@@ -258,11 +306,18 @@ impl ChunkSink for SpillSink {
             *m = m.max(*v);
         }
         let denominator = (self.b_total + 1) as f64;
-        for (id, f) in chunk.ids.iter().zip(&chunk.outcome.features) {
+        let mut tested_rows = chunk.outcome.standardized.chunks_exact(self.n.max(1));
+        for (k, (id, f)) in chunk.ids.iter().zip(&chunk.outcome.features).enumerate() {
             let p = f.prepared;
             let tested = p.status == Status::Tested;
             if tested {
                 self.tested += 1;
+                if let Some(sorter) = self.sorter.as_mut() {
+                    let row = tested_rows
+                        .next()
+                        .ok_or_else(|| RiffleError::Internal("standardized row missing".into()))?;
+                    sorter.push(p.kernel_obs, chunk.first_index + k as u64, row)?;
+                }
             } else {
                 *self.untested.entry(p.status.reason()).or_default() += 1;
             }
@@ -270,7 +325,7 @@ impl ChunkSink for SpillSink {
                 effect: p.effect,
                 statistic: p.statistic,
                 p_param: p.p_param,
-                p_perm: if tested {
+                p_perm: if tested && self.sorter.is_none() {
                     (f.exceed + 1) as f64 / denominator
                 } else {
                     f64::NAN
@@ -288,6 +343,65 @@ impl ChunkSink for SpillSink {
         }
         Ok(())
     }
+}
+
+/// The rank pass, the step-down reverse pass, and the spill rewrite that
+/// puts each feature's exceedance count, p_perm and p_maxt into its record.
+#[allow(clippy::too_many_arguments)]
+fn run_step_down(
+    kernel: Arc<Kernel>,
+    sorter: RowSorter,
+    pipeline_options: &PipelineOptions,
+    spill_dir: &Path,
+    tested: u64,
+    features: u64,
+    options: &ScanOptions,
+    stop: &AtomicBool,
+) -> Result<Vec<f64>> {
+    let b_total = kernel.relabelings().count;
+    let sorted = sorter.finish()?;
+    let rank_file = spill_dir.join("rank.bin");
+    let mut reporter = ProgressReporter::new(tested, options.quiet, "relabel");
+    let null_max = rank_pass(
+        kernel,
+        sorted,
+        pipeline_options.threads,
+        pipeline_options.chunk_rows,
+        &rank_file,
+        stop,
+        &mut |done| reporter.update(done),
+    )?;
+    reporter.finish();
+    let _ = std::fs::remove_dir(spill_dir.join("rank-runs"));
+    let dense = spill_dir.join("stepdown.bin");
+    let mut writer = crate::columns::ColumnFileWriter::create(&dense, 2)?;
+    reverse_and_scatter(
+        &rank_file,
+        spill_dir,
+        b_total,
+        features,
+        options.memory_bytes / 4,
+        &mut |_, result| match result {
+            Some(r) => writer.push(&[r.exceed as f64, r.p_maxt]),
+            None => writer.push(&[0.0, f64::NAN]),
+        },
+    )?;
+    writer.finish()?;
+    let _ = std::fs::remove_file(&rank_file);
+    let mut reader = crate::columns::ColumnFileReader::open(&dense, 2)?;
+    let mut row = [0.0f64; 2];
+    let denominator = (b_total + 1) as f64;
+    spill::rewrite_records(spill_dir, &mut |_, record| {
+        reader.next_row(&mut row)?;
+        if record.status == Status::Tested {
+            record.exceed = row[0] as u64;
+            record.p_perm = (record.exceed + 1) as f64 / denominator;
+            record.p_maxt = row[1];
+        }
+        Ok(())
+    })?;
+    let _ = std::fs::remove_file(&dense);
+    Ok(null_max)
 }
 
 /// Which p-value of a spill record to adjust.
@@ -403,6 +517,7 @@ fn finalize(
             .iter()
             .map(|m| (m.name().to_string(), ColumnKind::Float)),
     );
+    columns.push(("p_maxt".into(), ColumnKind::Float));
     columns.push(("p_maxt_single".into(), ColumnKind::Float));
     if options.also_param {
         columns.extend(
@@ -440,7 +555,12 @@ fn finalize(
             } else {
                 f64::NAN
             };
-            if p_maxt_single <= 0.05 {
+            let fwer = if record.p_maxt.is_nan() {
+                p_maxt_single
+            } else {
+                record.p_maxt
+            };
+            if fwer <= 0.05 {
                 fwer_hits_05 += 1;
             }
             let mut cells = vec![
@@ -460,6 +580,7 @@ fn finalize(
                 Cell::Count(record.n_relabel),
             ];
             cells.extend(adjusted.iter().map(|&v| Cell::Float(v)));
+            cells.push(Cell::Float(record.p_maxt));
             cells.push(Cell::Float(p_maxt_single));
             if options.also_param {
                 cells.extend(param_row.iter().map(|&v| Cell::Float(v)));

@@ -194,6 +194,26 @@ impl SpillWriter {
     }
 }
 
+/// Rewrites every record of a spill in place (through a temporary file),
+/// in feature order; ids are left as they are.
+pub fn rewrite_records(
+    dir: &Path,
+    update: &mut dyn FnMut(u64, &mut Record) -> Result<()>,
+) -> Result<()> {
+    let mut reader = SpillReader::open_unchecked(dir)?;
+    let mut writer = CheckedWriter::create(dir.join(RECORDS_FILE))?;
+    let mut index = 0u64;
+    let mut buf = [0u8; RECORD_LEN];
+    while let Some(mut record) = reader.next_record()? {
+        update(index, &mut record)?;
+        record.encode(&mut buf);
+        writer.write(&buf)?;
+        writer.count += 1;
+        index += 1;
+    }
+    writer.finish()
+}
+
 /// Validates a spill file's header and trailer (count and checksum).
 fn check_file(path: &Path, expect_record_len: bool) -> Result<u64> {
     let bad = |place: &str, msg: &str| RiffleError::bad_input(path, place, msg.to_string());

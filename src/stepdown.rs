@@ -1,0 +1,447 @@
+//! Westfall–Young step-down maxT (Westfall & Young 1993, "Resampling-based
+//! multiple testing", Wiley; algorithm 4.1 there, in the successive-maxima
+//! form of Ge, Dudoit & Speed 2003, "Resampling-based multiple testing for
+//! microarray data analysis", TEST 12), exact, in memory O(B) plus bounded
+//! buffers:
+//!
+//! 1. the first pass standardizes every feature and hands its observed
+//!    kernel statistic, index and standardized row to a [`RowSorter`]
+//!    (sorted runs on disk);
+//! 2. the rank pass streams the rows back in ascending order of observed
+//!    statistic and runs the GEMM kernel over them, keeping one running
+//!    maximum per relabelling: for feature j, `reached_j` counts the
+//!    relabelings whose maximum over j and every less extreme feature
+//!    reaches T_j, and p~_j = (reached_j + 1) / (B + 1); the same pass counts
+//!    each feature's own exceedances (its permutation p-value);
+//! 3. the reverse pass reads those records from the most extreme feature
+//!    down, takes the running maximum of p~ (the step-down monotonicity),
+//!    and scatters the results back to feature order through index-range
+//!    bucket files;
+//! 4. the spill records are rewritten with the counts and p_maxt.
+//!
+//! Parallelism in the rank pass is over relabelings (each worker owns a
+//! contiguous range of them and sees every row in order), so results do not
+//! depend on the thread count.
+
+use std::cmp::Ordering as CmpOrdering;
+use std::collections::BinaryHeap;
+use std::fs::File;
+use std::io::{BufReader, BufWriter, Read, Seek, SeekFrom, Write};
+use std::path::{Path, PathBuf};
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::Arc;
+
+use crossbeam_channel::bounded;
+
+use crate::error::{IoContext, Result, RiffleError};
+use crate::kernel::{Kernel, KernelScratch, RankState};
+
+/// External sort of standardized rows by (observed statistic, index).
+pub struct RowSorter {
+    dir: PathBuf,
+    n: usize,
+    capacity_rows: usize,
+    keys: Vec<(f64, u64)>,
+    rows: Vec<f64>,
+    runs: Vec<PathBuf>,
+}
+
+impl RowSorter {
+    pub fn new(dir: &Path, n: usize, memory_bytes: u64) -> Result<Self> {
+        std::fs::create_dir_all(dir).at(dir)?;
+        let per_row = (16 + 8 * n) as u64;
+        let capacity_rows = (memory_bytes / per_row).clamp(64, 1 << 24) as usize;
+        Ok(RowSorter {
+            dir: dir.to_path_buf(),
+            n,
+            capacity_rows,
+            keys: Vec::new(),
+            rows: Vec::new(),
+            runs: Vec::new(),
+        })
+    }
+
+    pub fn push(&mut self, key: f64, index: u64, row: &[f64]) -> Result<()> {
+        self.keys.push((key, index));
+        self.rows.extend_from_slice(row);
+        if self.keys.len() >= self.capacity_rows {
+            self.write_run()?;
+        }
+        Ok(())
+    }
+
+    fn write_run(&mut self) -> Result<()> {
+        if self.keys.is_empty() {
+            return Ok(());
+        }
+        let mut order: Vec<usize> = (0..self.keys.len()).collect();
+        order.sort_unstable_by(|&a, &b| compare_keys(self.keys[a], self.keys[b]));
+        let path = self.dir.join(format!("rows-{:05}.bin", self.runs.len()));
+        let mut out = BufWriter::with_capacity(1 << 20, File::create(&path).at(&path)?);
+        let n = self.n;
+        for &i in &order {
+            let (key, index) = self.keys[i];
+            out.write_all(&key.to_le_bytes()).at(&path)?;
+            out.write_all(&index.to_le_bytes()).at(&path)?;
+            for v in &self.rows[i * n..(i + 1) * n] {
+                out.write_all(&v.to_le_bytes()).at(&path)?;
+            }
+        }
+        out.flush().at(&path)?;
+        self.runs.push(path);
+        self.keys.clear();
+        self.rows.clear();
+        Ok(())
+    }
+
+    pub fn finish(mut self) -> Result<SortedRows> {
+        self.write_run()?;
+        let mut runs = Vec::new();
+        let mut heap = BinaryHeap::new();
+        for (r, path) in self.runs.iter().enumerate() {
+            let file = File::open(path).at(path)?;
+            let mut run = RunReader {
+                path: path.clone(),
+                input: BufReader::with_capacity(256 << 10, file),
+                key: (0.0, 0),
+                row: vec![0.0; self.n],
+                buf: vec![0u8; 16 + 8 * self.n],
+            };
+            if run.advance()? {
+                heap.push(HeapEntry {
+                    key: run.key,
+                    run: r,
+                });
+            }
+            runs.push(run);
+        }
+        Ok(SortedRows {
+            n: self.n,
+            runs,
+            heap,
+            paths: self.runs.clone(),
+        })
+    }
+}
+
+fn compare_keys(a: (f64, u64), b: (f64, u64)) -> CmpOrdering {
+    a.0.total_cmp(&b.0).then(a.1.cmp(&b.1))
+}
+
+struct RunReader {
+    path: PathBuf,
+    input: BufReader<File>,
+    key: (f64, u64),
+    row: Vec<f64>,
+    buf: Vec<u8>,
+}
+
+impl RunReader {
+    fn advance(&mut self) -> Result<bool> {
+        match self.input.read_exact(&mut self.buf) {
+            Ok(()) => {}
+            Err(e) if e.kind() == std::io::ErrorKind::UnexpectedEof => return Ok(false),
+            Err(e) => return Err(RiffleError::io(&self.path, e)),
+        }
+        let word = |i: usize| self.buf[i * 8..i * 8 + 8].try_into().unwrap();
+        self.key = (f64::from_le_bytes(word(0)), u64::from_le_bytes(word(1)));
+        for (k, v) in self.row.iter_mut().enumerate() {
+            *v = f64::from_le_bytes(word(k + 2));
+        }
+        Ok(true)
+    }
+}
+
+struct HeapEntry {
+    key: (f64, u64),
+    run: usize,
+}
+
+impl PartialEq for HeapEntry {
+    fn eq(&self, other: &Self) -> bool {
+        self.cmp(other) == CmpOrdering::Equal
+    }
+}
+impl Eq for HeapEntry {}
+impl PartialOrd for HeapEntry {
+    fn partial_cmp(&self, other: &Self) -> Option<CmpOrdering> {
+        Some(self.cmp(other))
+    }
+}
+impl Ord for HeapEntry {
+    // Reversed: BinaryHeap is a max-heap and we want the smallest key.
+    fn cmp(&self, other: &Self) -> CmpOrdering {
+        compare_keys(other.key, self.key)
+    }
+}
+
+/// The merged runs, read in ascending order.
+pub struct SortedRows {
+    n: usize,
+    runs: Vec<RunReader>,
+    heap: BinaryHeap<HeapEntry>,
+    paths: Vec<PathBuf>,
+}
+
+/// Consecutive rows of the rank order.
+pub struct RankChunk {
+    pub keys: Vec<f64>,
+    pub indices: Vec<u64>,
+    pub rows: Vec<f64>,
+}
+
+impl SortedRows {
+    pub fn next_chunk(&mut self, max_rows: usize) -> Result<Option<RankChunk>> {
+        let mut chunk = RankChunk {
+            keys: Vec::with_capacity(max_rows),
+            indices: Vec::with_capacity(max_rows),
+            rows: Vec::with_capacity(max_rows * self.n),
+        };
+        while chunk.keys.len() < max_rows {
+            let Some(top) = self.heap.pop() else { break };
+            let run = &mut self.runs[top.run];
+            chunk.keys.push(run.key.0);
+            chunk.indices.push(run.key.1);
+            chunk.rows.extend_from_slice(&run.row);
+            if run.advance()? {
+                self.heap.push(HeapEntry {
+                    key: run.key,
+                    run: top.run,
+                });
+            }
+        }
+        Ok((!chunk.keys.is_empty()).then_some(chunk))
+    }
+
+    fn remove_files(&self) {
+        for p in &self.paths {
+            let _ = std::fs::remove_file(p);
+        }
+    }
+}
+
+/// Per-feature outcome of the rank pass, in rank order.
+pub const RANK_RECORD: usize = 24;
+
+/// Runs the rank pass and writes (index, exceed, reached) records in
+/// ascending rank order to `rank_file`. Returns the per-relabelling maxima
+/// over all features (for single-step maxT).
+pub fn rank_pass(
+    kernel: Arc<Kernel>,
+    mut sorted: SortedRows,
+    threads: usize,
+    chunk_rows: usize,
+    rank_file: &Path,
+    stop: &AtomicBool,
+    progress: &mut dyn FnMut(u64),
+) -> Result<Vec<f64>> {
+    let b_total = kernel.relabelings().count;
+    let workers = threads.clamp(1, b_total.max(1));
+    let ranges: Vec<(usize, usize)> = (0..workers)
+        .map(|w| {
+            let start = b_total * w / workers;
+            let end = b_total * (w + 1) / workers;
+            (start, end - start)
+        })
+        .collect();
+    let mut out = BufWriter::with_capacity(1 << 20, File::create(rank_file).at(rank_file)?);
+    let failed = AtomicBool::new(false);
+
+    let result = std::thread::scope(|scope| -> Result<Vec<f64>> {
+        let (part_tx, part_rx) = bounded::<(u64, usize, Vec<u64>, Vec<u64>)>(2 * workers + 2);
+        let mut chunk_txs = Vec::new();
+        let mut handles = Vec::new();
+        for (w, &(col0, cols)) in ranges.iter().enumerate() {
+            let (tx, rx) = bounded::<(u64, Arc<RankChunk>)>(2);
+            chunk_txs.push(tx);
+            let part_tx = part_tx.clone();
+            let kernel = kernel.clone();
+            let failed = &failed;
+            handles.push(scope.spawn(move || -> Vec<f64> {
+                let mut state = RankState::new(col0, cols);
+                let mut scratch = KernelScratch::default();
+                while let Ok((seq, chunk)) = rx.recv() {
+                    if failed.load(Ordering::Relaxed) {
+                        continue;
+                    }
+                    let rows = chunk.keys.len();
+                    let mut exceed = vec![0u64; rows];
+                    let mut reached = vec![0u64; rows];
+                    kernel.rank_rows(
+                        &chunk.rows,
+                        &chunk.keys,
+                        &mut state,
+                        &mut exceed,
+                        &mut reached,
+                        &mut scratch,
+                    );
+                    if part_tx.send((seq, w, exceed, reached)).is_err() {
+                        break;
+                    }
+                }
+                state.maxima
+            }));
+        }
+        drop(part_tx);
+
+        // Reader: merge the runs and hand every chunk to every worker.
+        let reader = scope.spawn(move || -> Result<Vec<(u64, Vec<u64>)>> {
+            let mut seq = 0u64;
+            let mut order = Vec::new();
+            while let Some(chunk) = sorted.next_chunk(chunk_rows)? {
+                if stop.load(Ordering::Relaxed) {
+                    break;
+                }
+                let chunk = Arc::new(chunk);
+                order.push((seq, chunk.indices.clone()));
+                for tx in &chunk_txs {
+                    if tx.send((seq, chunk.clone())).is_err() {
+                        return Err(RiffleError::Internal("rank pass worker stopped".into()));
+                    }
+                }
+                seq += 1;
+            }
+            sorted.remove_files();
+            Ok(order)
+        });
+
+        // Collector: sum the workers' parts of each chunk, in order. Each
+        // worker sends its chunks in order, so a chunk is complete when
+        // every worker has sent its part.
+        let mut pending: std::collections::BTreeMap<u64, (usize, Vec<u64>, Vec<u64>)> =
+            Default::default();
+        let mut parts_done: Vec<(u64, Vec<u64>, Vec<u64>)> = Vec::new();
+        for (seq, _w, exceed, reached) in part_rx.iter() {
+            let entry = pending
+                .entry(seq)
+                .or_insert_with(|| (0, vec![0; exceed.len()], vec![0; reached.len()]));
+            entry.0 += 1;
+            for (a, b) in entry.1.iter_mut().zip(&exceed) {
+                *a += b;
+            }
+            for (a, b) in entry.2.iter_mut().zip(&reached) {
+                *a += b;
+            }
+            if entry.0 == workers {
+                let (_, e, r) = pending.remove(&seq).unwrap();
+                parts_done.push((seq, e, r));
+            }
+        }
+        let order = reader
+            .join()
+            .map_err(|_| RiffleError::Internal("rank pass reader panicked".into()))??;
+        let mut null_max = Vec::with_capacity(b_total);
+        for h in handles {
+            null_max.extend(
+                h.join()
+                    .map_err(|_| RiffleError::Internal("rank pass worker panicked".into()))?,
+            );
+        }
+        if stop.load(Ordering::Relaxed) {
+            return Err(RiffleError::Interrupted);
+        }
+        parts_done.sort_by_key(|p| p.0);
+        let mut done = 0u64;
+        for ((seq, indices), (seq2, exceed, reached)) in order.iter().zip(&parts_done) {
+            debug_assert_eq!(seq, seq2);
+            for k in 0..indices.len() {
+                out.write_all(&indices[k].to_le_bytes()).at(rank_file)?;
+                out.write_all(&exceed[k].to_le_bytes()).at(rank_file)?;
+                out.write_all(&reached[k].to_le_bytes()).at(rank_file)?;
+            }
+            done += indices.len() as u64;
+            progress(done);
+        }
+        if order.len() != parts_done.len() {
+            failed.store(true, Ordering::Relaxed);
+            return Err(RiffleError::Internal("rank pass lost chunks".into()));
+        }
+        Ok(null_max)
+    })?;
+    out.flush().at(rank_file)?;
+    Ok(result)
+}
+
+/// Per-feature results of step-down, in feature order.
+#[derive(Debug, Clone, Copy)]
+pub struct StepDownResult {
+    pub exceed: u64,
+    pub p_maxt: f64,
+}
+
+/// Reads the rank file from the most extreme feature down, applies the
+/// step-down running maximum, and calls `sink(index, result)` in feature
+/// order for every feature (`None` for features that were not ranked),
+/// using index-range bucket files of at most `memory_bytes` each.
+pub fn reverse_and_scatter(
+    rank_file: &Path,
+    scratch: &Path,
+    b_total: usize,
+    n_features: u64,
+    memory_bytes: u64,
+    sink: &mut dyn FnMut(u64, Option<StepDownResult>) -> Result<()>,
+) -> Result<()> {
+    let bucket_width = (memory_bytes / 24).clamp(1024, 1 << 26);
+    let buckets = n_features.div_ceil(bucket_width).max(1) as usize;
+    let bucket_path = |b: usize| scratch.join(format!("stepdown-{b:05}.bin"));
+    let mut writers = Vec::with_capacity(buckets);
+    for b in 0..buckets {
+        let p = bucket_path(b);
+        writers.push(BufWriter::with_capacity(64 << 10, File::create(&p).at(&p)?));
+    }
+    let mut file = File::open(rank_file).at(rank_file)?;
+    let total = file.metadata().at(rank_file)?.len() / RANK_RECORD as u64;
+    let block = 1 << 16;
+    let mut buf = vec![0u8; block * RANK_RECORD];
+    let mut end = total;
+    let mut running = 0.0f64;
+    let denominator = (b_total + 1) as f64;
+    while end > 0 {
+        let start = end.saturating_sub(block as u64);
+        let count = (end - start) as usize;
+        file.seek(SeekFrom::Start(start * RANK_RECORD as u64))
+            .at(rank_file)?;
+        file.read_exact(&mut buf[..count * RANK_RECORD])
+            .at(rank_file)?;
+        for k in (0..count).rev() {
+            let rec = &buf[k * RANK_RECORD..(k + 1) * RANK_RECORD];
+            let word = |i: usize| u64::from_le_bytes(rec[i * 8..i * 8 + 8].try_into().unwrap());
+            let (index, exceed, reached) = (word(0), word(1), word(2));
+            let p = (reached + 1) as f64 / denominator;
+            running = running.max(p);
+            let b = (index / bucket_width) as usize;
+            let w = &mut writers[b];
+            let p_path = bucket_path(b);
+            w.write_all(&index.to_le_bytes()).at(&p_path)?;
+            w.write_all(&exceed.to_le_bytes()).at(&p_path)?;
+            w.write_all(&running.to_le_bytes()).at(&p_path)?;
+        }
+        end = start;
+    }
+    for (b, mut w) in writers.into_iter().enumerate() {
+        w.flush().at(&bucket_path(b))?;
+    }
+    let mut slots: Vec<Option<StepDownResult>> = Vec::new();
+    for b in 0..buckets {
+        let p = bucket_path(b);
+        let bytes = std::fs::read(&p).at(&p)?;
+        let base = b as u64 * bucket_width;
+        let width = bucket_width.min(n_features - base) as usize;
+        slots.clear();
+        slots.resize(width, None);
+        for rec in bytes.chunks_exact(24) {
+            let word = |i: usize| rec[i * 8..i * 8 + 8].try_into().unwrap();
+            let index = u64::from_le_bytes(word(0));
+            slots[(index - base) as usize] = Some(StepDownResult {
+                exceed: u64::from_le_bytes(word(1)),
+                p_maxt: f64::from_le_bytes(word(2)),
+            });
+        }
+        drop(bytes);
+        let _ = std::fs::remove_file(&p);
+        for (k, slot) in slots.iter().enumerate() {
+            sink(base + k as u64, *slot)?;
+        }
+    }
+    Ok(())
+}
