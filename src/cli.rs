@@ -89,6 +89,10 @@ pub struct ScanArgs {
     /// a rank-order pass) or single-step only (p_maxt_single).
     #[arg(long, value_enum, default_value_t = MaxtMode::StepDown)]
     pub maxt: MaxtMode,
+    /// Also estimate the FDR from the null pooled over all features and
+    /// relabelings (columns p_pooled, q_pooled).
+    #[arg(long)]
+    pub pooled_null: bool,
     /// No progress output.
     #[arg(long)]
     pub quiet: bool,
@@ -156,6 +160,7 @@ impl ScanArgs {
             also_param: self.also_param,
             storey_lambda: self.storey_lambda,
             maxt: self.maxt,
+            pooled_null: self.pooled_null,
             quiet: self.quiet,
         }
     }

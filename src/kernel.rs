@@ -22,6 +22,8 @@ const F32_UNIT: f64 = 5.960_464_477_539_063e-8;
 /// Everything a worker needs, shared read-only by all workers.
 pub struct Kernel {
     spec: TestSpec,
+    /// Whether to count every relabelled statistic into a pooled histogram.
+    pooled_null: bool,
     observed: Vec<u8>,
     relabel: Relabelings,
     /// `n x B` row-major: 1.0 where relabelling b puts sample i in group B.
@@ -43,6 +45,8 @@ pub struct ChunkOutcome {
     pub null_max: Vec<f64>,
     /// Standardized rows (`n` values each) of the tested features, in order.
     pub standardized: Vec<f64>,
+    /// Pooled null histogram of this chunk (empty unless asked for).
+    pub null_hist: Vec<u64>,
 }
 
 /// Per-worker reusable buffers.
@@ -67,10 +71,20 @@ impl Kernel {
         }
         Kernel {
             spec,
+            pooled_null: false,
             observed,
             relabel,
             weights,
         }
+    }
+
+    pub fn with_pooled_null(mut self, pooled_null: bool) -> Self {
+        self.pooled_null = pooled_null;
+        self
+    }
+
+    pub fn pooled_null(&self) -> bool {
+        self.pooled_null
     }
 
     pub fn relabelings(&self) -> &Relabelings {
@@ -122,6 +136,7 @@ impl Kernel {
                 features,
                 null_max,
                 standardized,
+                null_hist: Vec::new(),
             };
         }
         let obs: Vec<f64> = s
@@ -132,6 +147,11 @@ impl Kernel {
         let rows_view = self.load_rows(&standardized, &obs, &mut s.rows);
         let mut floors = vec![f32::NEG_INFINITY; b_total];
         let mut exceed = vec![0u64; t];
+        let mut null_hist = if self.pooled_null {
+            vec![0u64; NullHistogram::BINS]
+        } else {
+            Vec::new()
+        };
         self.for_each_tile_row(&rows_view, 0, b_total, &mut s.tiles, |k, col0, tile| {
             let z = &standardized[k * n..(k + 1) * n];
             let row = RowCheck::new(obs[k], rows_view.band[k]);
@@ -143,6 +163,7 @@ impl Kernel {
                 &mut floors[col0..col0 + tile.len()],
                 &mut null_max[col0..col0 + tile.len()],
                 None,
+                &mut null_hist,
             );
         });
         for (k, &r) in s.tested.iter().enumerate() {
@@ -152,6 +173,7 @@ impl Kernel {
             features,
             null_max,
             standardized,
+            null_hist,
         }
     }
 
@@ -190,6 +212,7 @@ impl Kernel {
                     &mut state.floors[range.clone()],
                     &mut state.maxima[range],
                     Some(&mut hits),
+                    &mut state.histogram,
                 );
                 reached[k] += hits;
             },
@@ -357,7 +380,13 @@ impl Kernel {
         floors: &mut [f32],
         maxima: &mut [f64],
         reached: Option<&mut u64>,
+        histogram: &mut [u64],
     ) -> u64 {
+        if !histogram.is_empty() {
+            for &v in tile.iter().filter(|v| !v.is_nan()) {
+                histogram[NullHistogram::bin(v)] += 1;
+            }
+        }
         // Fast pass: clear exceedances, and whether anything needs f64.
         let mut clear = 0u32;
         let mut unsure = false;
@@ -380,6 +409,9 @@ impl Kernel {
                 } else {
                     let e = exact_at(j);
                     count += u64::from(e >= row.threshold);
+                    if v.is_nan() && !histogram.is_empty() {
+                        histogram[NullHistogram::bin(e as f32)] += 1;
+                    }
                     Some(e)
                 };
                 if v > floors[j] || v.is_nan() {
@@ -422,16 +454,90 @@ pub struct RankState {
     /// Exact (f64) running maximum per relabelling.
     pub maxima: Vec<f64>,
     floors: Vec<f32>,
+    /// Pooled null histogram over this range (empty unless asked for).
+    pub histogram: Vec<u64>,
 }
 
 impl RankState {
-    pub fn new(col0: usize, cols: usize) -> Self {
+    pub fn new(col0: usize, cols: usize, pooled_null: bool) -> Self {
         RankState {
             col0,
             cols,
             maxima: vec![f64::NEG_INFINITY; cols],
             floors: vec![f32::NEG_INFINITY; cols],
+            histogram: if pooled_null {
+                vec![0; NullHistogram::BINS]
+            } else {
+                Vec::new()
+            },
         }
+    }
+}
+
+/// All relabelled kernel statistics of all features, counted in fine bins
+/// (1 sign, 8 exponent and 10 mantissa bits of the f32 value: a relative
+/// resolution of 2^-10), merged by addition across chunks, workers and
+/// shards. Gives the pooled-null p-value of an observed statistic: the
+/// share of null statistics in its bin or above (Storey & Tibshirani 2003,
+/// PNAS 100, null pooled over features and relabelings).
+#[derive(Debug, Clone)]
+pub struct NullHistogram {
+    pub counts: Vec<u64>,
+}
+
+impl NullHistogram {
+    pub const BINS: usize = 1 << 19;
+
+    #[inline(always)]
+    pub fn bin(v: f32) -> usize {
+        let bits = v.to_bits();
+        // Order-preserving map of f32 to u32, then the top 19 bits.
+        let ordered = if bits >> 31 == 1 {
+            !bits
+        } else {
+            bits | 0x8000_0000
+        };
+        (ordered >> 13) as usize
+    }
+
+    pub fn empty() -> Self {
+        NullHistogram {
+            counts: vec![0; Self::BINS],
+        }
+    }
+
+    pub fn add(&mut self, other: &[u64]) {
+        for (a, b) in self.counts.iter_mut().zip(other) {
+            *a += b;
+        }
+    }
+
+    /// Turns the counts into "null statistics in this bin or above".
+    pub fn into_upper_tail(mut self) -> UpperTail {
+        let mut running = 0u64;
+        for c in self.counts.iter_mut().rev() {
+            running += *c;
+            *c = running;
+        }
+        UpperTail {
+            total: running,
+            at_or_above: self.counts,
+        }
+    }
+}
+
+pub struct UpperTail {
+    pub total: u64,
+    at_or_above: Vec<u64>,
+}
+
+impl UpperTail {
+    /// Pooled-null p-value of an observed kernel statistic: null statistics
+    /// in its bin or above, plus one, over all null statistics plus one
+    /// (never 0, as with (b + 1)/(B + 1)).
+    pub fn p_value(&self, observed: f64) -> f64 {
+        let above = self.at_or_above[NullHistogram::bin(observed as f32)];
+        ((above + 1) as f64 / (self.total + 1) as f64).min(1.0)
     }
 }
 

@@ -56,3 +56,14 @@ impl SingleStep {
         (reached + 1) as f64 / (self.sorted.len() + 1) as f64
     }
 }
+
+pub const NULL_HISTOGRAM_FILE: &str = "null_hist.bin";
+
+/// The pooled null histogram, kept beside the spill for later merging.
+pub fn write_null_histogram(spill_dir: &Path, hist: &crate::kernel::NullHistogram) -> Result<()> {
+    let path = spill_dir.join(NULL_HISTOGRAM_FILE);
+    let temp = temp_name(&path);
+    let bytes: Vec<u8> = hist.counts.iter().flat_map(|v| v.to_le_bytes()).collect();
+    std::fs::write(&temp, bytes).at(&temp)?;
+    std::fs::rename(&temp, &path).at(&path)
+}

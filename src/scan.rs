@@ -10,7 +10,7 @@ use std::time::Instant;
 use crate::design::{Relabelings, SampleSheet, TwoGroupDesign};
 use crate::error::{IoContext, Result, RiffleError};
 use crate::input::{self, MatrixInfo};
-use crate::kernel::Kernel;
+use crate::kernel::{Kernel, NullHistogram, UpperTail};
 use crate::multitest::{self, AdjustOptions, AdjustSummary, LambdaChoice, Method, PValueSource};
 use crate::output::{create_table, Cell, ColumnKind, TableFormat};
 use crate::pipeline::{self, ChunkSink, FinishedChunk, PipelineOptions, PipelineStats};
@@ -45,6 +45,8 @@ pub struct ScanOptions {
     /// Family-wise error: step-down maxT (adds a rank-order pass) or only
     /// single-step.
     pub maxt: MaxtMode,
+    /// Pooled-null FDR (q_pooled): histogram of every relabelled statistic.
+    pub pooled_null: bool,
     pub quiet: bool,
 }
 
@@ -77,6 +79,7 @@ impl ScanOptions {
             also_param: false,
             storey_lambda: LambdaChoice::Fixed(0.5),
             maxt: MaxtMode::StepDown,
+            pooled_null: false,
             quiet: true,
         }
     }
@@ -149,7 +152,9 @@ pub fn run_scan_on(
     };
     let b_total = relabel.count;
     let exact = relabel.exact;
-    let kernel = Arc::new(Kernel::new(spec, design.labels.clone(), relabel));
+    let kernel = Arc::new(
+        Kernel::new(spec, design.labels.clone(), relabel).with_pooled_null(options.pooled_null),
+    );
 
     prepare_out_dir(&options.out)?;
     let spill_dir = options.out.join(SPILL_DIR);
@@ -179,6 +184,7 @@ pub fn run_scan_on(
         untested: Default::default(),
         sorter,
         n: design.n(),
+        null_hist: options.pooled_null.then(NullHistogram::empty),
     };
     let mut reporter = ProgressReporter::new(
         info.n_features,
@@ -197,6 +203,7 @@ pub fn run_scan_on(
     let SpillSink {
         writer,
         mut null_max,
+        mut null_hist,
         tested,
         untested,
         sorter,
@@ -205,7 +212,7 @@ pub fn run_scan_on(
     writer.finish()?;
     if let Some(sorter) = sorter {
         let rank_started = Instant::now();
-        null_max = run_step_down(
+        (null_max, null_hist) = run_step_down(
             kernel,
             sorter,
             &pipeline_options,
@@ -218,8 +225,12 @@ pub fn run_scan_on(
         stats.wall_seconds += rank_started.elapsed().as_secs_f64();
     }
     crate::maxt::write_null_max(&spill_dir, &null_max)?;
+    if let Some(hist) = &null_hist {
+        crate::maxt::write_null_histogram(&spill_dir, hist)?;
+    }
+    let pooled = null_hist.map(|h| h.into_upper_tail());
 
-    let finalized = finalize(options, &spill_dir, &null_max, spec.side)?;
+    let finalized = finalize(options, &spill_dir, &null_max, pooled.as_ref())?;
     let seconds = started.elapsed().as_secs_f64();
     let summary = ScanSummary {
         features: stats.features,
@@ -289,6 +300,7 @@ fn pipeline_options(options: &ScanOptions, n: usize, b_total: usize) -> Pipeline
 
 struct SpillSink {
     writer: SpillWriter,
+    null_hist: Option<NullHistogram>,
     /// Step-down mode: standardized rows go here for the rank pass.
     sorter: Option<RowSorter>,
     n: usize,
@@ -304,6 +316,9 @@ impl ChunkSink for SpillSink {
     fn accept(&mut self, chunk: FinishedChunk) -> Result<()> {
         for (m, v) in self.null_max.iter_mut().zip(&chunk.outcome.null_max) {
             *m = m.max(*v);
+        }
+        if let Some(hist) = self.null_hist.as_mut() {
+            hist.add(&chunk.outcome.null_hist);
         }
         let denominator = (self.b_total + 1) as f64;
         let mut tested_rows = chunk.outcome.standardized.chunks_exact(self.n.max(1));
@@ -357,12 +372,12 @@ fn run_step_down(
     features: u64,
     options: &ScanOptions,
     stop: &AtomicBool,
-) -> Result<Vec<f64>> {
+) -> Result<(Vec<f64>, Option<NullHistogram>)> {
     let b_total = kernel.relabelings().count;
     let sorted = sorter.finish()?;
     let rank_file = spill_dir.join("rank.bin");
     let mut reporter = ProgressReporter::new(tested, options.quiet, "relabel");
-    let null_max = rank_pass(
+    let (null_max, histogram) = rank_pass(
         kernel,
         sorted,
         pipeline_options.threads,
@@ -401,19 +416,20 @@ fn run_step_down(
         Ok(())
     })?;
     let _ = std::fs::remove_file(&dense);
-    Ok(null_max)
+    Ok((null_max, histogram))
 }
 
 /// Which p-value of a spill record to adjust.
 #[derive(Clone, Copy)]
-enum PColumn {
+enum PColumn<'a> {
     Perm,
     Param,
+    Pooled(&'a UpperTail),
 }
 
 struct SpillPValues<'a> {
     dir: &'a Path,
-    column: PColumn,
+    column: PColumn<'a>,
 }
 
 impl PValueSource for SpillPValues<'_> {
@@ -426,6 +442,7 @@ impl PValueSource for SpillPValues<'_> {
                 match self.column {
                     PColumn::Perm => r.p_perm,
                     PColumn::Param => r.p_param,
+                    PColumn::Pooled(tail) => tail.p_value(r.kernel_obs),
                 }
             };
             f(p)?;
@@ -446,6 +463,7 @@ pub const METHODS: [Method; 6] = [
 struct Finalized {
     perm: AdjustSummary,
     param: Option<AdjustSummary>,
+    pooled: Option<AdjustSummary>,
     fwer_hits_05: u64,
     results_path: PathBuf,
 }
@@ -465,9 +483,8 @@ fn finalize(
     options: &ScanOptions,
     spill_dir: &Path,
     null_max: &[f64],
-    side: Side,
+    pooled: Option<&UpperTail>,
 ) -> Result<Finalized> {
-    let _ = side;
     SpillReader::open(spill_dir)?;
     let adjust_options = AdjustOptions {
         methods: METHODS.to_vec(),
@@ -499,6 +516,40 @@ fn finalize(
     } else {
         None
     };
+    // With --pooled-null: the pooled p-value and its Storey q-value.
+    let mut pooled_columns = None;
+    let pooled_summary = if let Some(tail) = pooled {
+        let path = spill_dir.join("pooled-adjusted.bin");
+        let mut file = crate::columns::ColumnFileWriter::create(&path, 2)?;
+        let mut source = SpillPValues {
+            dir: spill_dir,
+            column: PColumn::Pooled(tail),
+        };
+        let mut p_values = SpillReader::open_unchecked(spill_dir)?;
+        let summary = multitest::adjust(
+            &mut source,
+            &AdjustOptions {
+                methods: vec![Method::Storey],
+                ..adjust_options.clone()
+            },
+            &mut |_, adjusted| {
+                let record = p_values
+                    .next_record()?
+                    .ok_or_else(|| RiffleError::Internal("spill ended early".into()))?;
+                let p = if record.status == Status::Tested {
+                    tail.p_value(record.kernel_obs)
+                } else {
+                    f64::NAN
+                };
+                file.push(&[p, adjusted[0]])
+            },
+        )?;
+        file.finish()?;
+        pooled_columns = Some(crate::columns::ColumnFileReader::open(&path, 2)?);
+        Some(summary)
+    } else {
+        None
+    };
 
     let mut columns: Vec<(String, ColumnKind)> = vec![
         ("feature".into(), ColumnKind::Text),
@@ -519,6 +570,10 @@ fn finalize(
     );
     columns.push(("p_maxt".into(), ColumnKind::Float));
     columns.push(("p_maxt_single".into(), ColumnKind::Float));
+    if pooled.is_some() {
+        columns.push(("p_pooled".into(), ColumnKind::Float));
+        columns.push(("q_pooled".into(), ColumnKind::Float));
+    }
     if options.also_param {
         columns.extend(
             METHODS
@@ -534,6 +589,7 @@ fn finalize(
     let mut reader = SpillReader::open_unchecked(spill_dir)?;
     let mut id = String::new();
     let mut param_row = vec![f64::NAN; METHODS.len()];
+    let mut pooled_row = [f64::NAN; 2];
     let mut fwer_hits_05 = 0u64;
     let perm_summary = multitest::adjust(
         &mut SpillPValues {
@@ -582,6 +638,10 @@ fn finalize(
             cells.extend(adjusted.iter().map(|&v| Cell::Float(v)));
             cells.push(Cell::Float(record.p_maxt));
             cells.push(Cell::Float(p_maxt_single));
+            if let Some(cols) = pooled_columns.as_mut() {
+                cols.next_row(&mut pooled_row)?;
+                cells.extend(pooled_row.iter().map(|&v| Cell::Float(v)));
+            }
             if options.also_param {
                 cells.extend(param_row.iter().map(|&v| Cell::Float(v)));
             }
@@ -590,12 +650,12 @@ fn finalize(
         },
     )?;
     table.finish()?;
-    if options.also_param {
-        let _ = std::fs::remove_file(spill_dir.join("param-adjusted.bin"));
-    }
+    let _ = std::fs::remove_file(spill_dir.join("param-adjusted.bin"));
+    let _ = std::fs::remove_file(spill_dir.join("pooled-adjusted.bin"));
     Ok(Finalized {
         perm: perm_summary,
         param: param_summary,
+        pooled: pooled_summary,
         fwer_hits_05,
         results_path,
     })
@@ -638,6 +698,10 @@ fn write_run_record(
         "multiple_testing": {
             "p_perm": summary_json(&finalized.perm),
             "p_param": finalized.param.as_ref().map(summary_json),
+            "pooled_null": finalized.pooled.as_ref().map(|s| serde_json::json!({
+                "pi0": s.pi0, "lambda": s.lambda,
+                "q_pooled_hits_at_0.01_0.05_0.1": s.rejections.first().map(|r| r.1),
+            })),
             "fwer_p_maxt_single_at_0.05": finalized.fwer_hits_05,
         },
         "timing": {"seconds": summary.seconds, "pipeline_seconds": stats.wall_seconds,

@@ -34,7 +34,7 @@ use std::sync::Arc;
 use crossbeam_channel::bounded;
 
 use crate::error::{IoContext, Result, RiffleError};
-use crate::kernel::{Kernel, KernelScratch, RankState};
+use crate::kernel::{Kernel, KernelScratch, NullHistogram, RankState};
 
 /// External sort of standardized rows by (observed statistic, index).
 pub struct RowSorter {
@@ -225,7 +225,8 @@ pub const RANK_RECORD: usize = 24;
 
 /// Runs the rank pass and writes (index, exceed, reached) records in
 /// ascending rank order to `rank_file`. Returns the per-relabelling maxima
-/// over all features (for single-step maxT).
+/// over all features (for single-step maxT) and, when the kernel keeps one,
+/// the pooled null histogram.
 pub fn rank_pass(
     kernel: Arc<Kernel>,
     mut sorted: SortedRows,
@@ -234,7 +235,7 @@ pub fn rank_pass(
     rank_file: &Path,
     stop: &AtomicBool,
     progress: &mut dyn FnMut(u64),
-) -> Result<Vec<f64>> {
+) -> Result<(Vec<f64>, Option<NullHistogram>)> {
     let b_total = kernel.relabelings().count;
     let workers = threads.clamp(1, b_total.max(1));
     let ranges: Vec<(usize, usize)> = (0..workers)
@@ -247,7 +248,7 @@ pub fn rank_pass(
     let mut out = BufWriter::with_capacity(1 << 20, File::create(rank_file).at(rank_file)?);
     let failed = AtomicBool::new(false);
 
-    let result = std::thread::scope(|scope| -> Result<Vec<f64>> {
+    let result = std::thread::scope(|scope| -> Result<(Vec<f64>, Option<NullHistogram>)> {
         let (part_tx, part_rx) = bounded::<(u64, usize, Vec<u64>, Vec<u64>)>(2 * workers + 2);
         let mut chunk_txs = Vec::new();
         let mut handles = Vec::new();
@@ -257,8 +258,8 @@ pub fn rank_pass(
             let part_tx = part_tx.clone();
             let kernel = kernel.clone();
             let failed = &failed;
-            handles.push(scope.spawn(move || -> Vec<f64> {
-                let mut state = RankState::new(col0, cols);
+            handles.push(scope.spawn(move || -> (Vec<f64>, Vec<u64>) {
+                let mut state = RankState::new(col0, cols, kernel.pooled_null());
                 let mut scratch = KernelScratch::default();
                 while let Ok((seq, chunk)) = rx.recv() {
                     if failed.load(Ordering::Relaxed) {
@@ -279,7 +280,7 @@ pub fn rank_pass(
                         break;
                     }
                 }
-                state.maxima
+                (state.maxima, state.histogram)
             }));
         }
         drop(part_tx);
@@ -331,11 +332,15 @@ pub fn rank_pass(
             .join()
             .map_err(|_| RiffleError::Internal("rank pass reader panicked".into()))??;
         let mut null_max = Vec::with_capacity(b_total);
+        let mut histogram = kernel.pooled_null().then(NullHistogram::empty);
         for h in handles {
-            null_max.extend(
-                h.join()
-                    .map_err(|_| RiffleError::Internal("rank pass worker panicked".into()))?,
-            );
+            let (maxima, counts) = h
+                .join()
+                .map_err(|_| RiffleError::Internal("rank pass worker panicked".into()))?;
+            null_max.extend(maxima);
+            if let Some(hist) = histogram.as_mut() {
+                hist.add(&counts);
+            }
         }
         if stop.load(Ordering::Relaxed) {
             return Err(RiffleError::Interrupted);
@@ -356,7 +361,7 @@ pub fn rank_pass(
             failed.store(true, Ordering::Relaxed);
             return Err(RiffleError::Internal("rank pass lost chunks".into()));
         }
-        Ok(null_max)
+        Ok((null_max, histogram))
     })?;
     out.flush().at(rank_file)?;
     Ok(result)

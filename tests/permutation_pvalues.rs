@@ -219,6 +219,7 @@ fn results_do_not_depend_on_threads_or_chunk_size() {
                 o.perms = 700;
                 o.threads = threads;
                 o.chunk_rows = Some(chunk);
+                o.pooled_null = true;
                 let summary = scan_rows(&rows, &labels, &o);
                 outputs.push(std::fs::read(&summary.results_path).unwrap());
             }
