@@ -204,16 +204,33 @@ impl Kernel {
                 let row = RowCheck::new(obs[k], rows_view.band[k]);
                 let range = col0 - base..col0 - base + tile.len();
                 let mut hits = 0u64;
+                let recording = !state.records.is_empty();
+                if recording {
+                    state.before.clear();
+                    state.before.extend_from_slice(&state.maxima[range.clone()]);
+                }
                 exceed[k] += self.count_row(
                     tile,
                     &row,
                     z,
                     col0,
                     &mut state.floors[range.clone()],
-                    &mut state.maxima[range],
+                    &mut state.maxima[range.clone()],
                     Some(&mut hits),
                     &mut state.histogram,
                 );
+                if recording {
+                    for (j, (&old, &new)) in state
+                        .before
+                        .iter()
+                        .zip(&state.maxima[range.clone()])
+                        .enumerate()
+                    {
+                        if new > old {
+                            state.records[range.start + j].push((obs[k], new));
+                        }
+                    }
+                }
                 reached[k] += hits;
             },
         );
@@ -456,13 +473,26 @@ pub struct RankState {
     floors: Vec<f32>,
     /// Pooled null histogram over this range (empty unless asked for).
     pub histogram: Vec<u64>,
+    /// With `record_maxima`: per relabelling, every (observed statistic,
+    /// new maximum) at which its running maximum rose — the whole step
+    /// function, so that shards can be combined exactly.
+    pub records: Vec<Vec<(f64, f64)>>,
+    before: Vec<f64>,
 }
 
 impl RankState {
+    /// Keep the running-maximum step functions (see `records`).
+    pub fn record_maxima(mut self) -> Self {
+        self.records = vec![Vec::new(); self.cols];
+        self
+    }
+
     pub fn new(col0: usize, cols: usize, pooled_null: bool) -> Self {
         RankState {
             col0,
             cols,
+            records: Vec::new(),
+            before: Vec::new(),
             maxima: vec![f64::NEG_INFINITY; cols],
             floors: vec![f32::NEG_INFINITY; cols],
             histogram: if pooled_null {
