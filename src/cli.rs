@@ -43,12 +43,23 @@ pub struct ScanArgs {
     /// Sample sheet: CSV or TSV with a header.
     #[arg(long)]
     pub samples: PathBuf,
-    /// Sample-sheet column holding the group of each sample.
-    #[arg(long)]
+    /// Sample-sheet column holding the group (or condition) of each sample.
+    #[arg(long, default_value = "")]
     pub group: String,
-    /// Two levels of the group column, A,B: effects are B minus A.
+    /// Levels of the group column to compare: A,B for two-group and paired
+    /// tests (effects are B minus A); any number for anova/kruskal.
     #[arg(long, value_delimiter = ',')]
     pub levels: Option<Vec<String>>,
+    /// Numeric sample-sheet column to correlate with (pearson, spearman).
+    #[arg(long = "trait")]
+    pub trait_column: Option<String>,
+    /// Sample-sheet column with the pair id (paired-t, signed-rank).
+    #[arg(long)]
+    pub pair: Option<String>,
+    /// Sample-sheet column of strata (batch, site, plate): relabelings
+    /// only exchange samples within a stratum.
+    #[arg(long)]
+    pub strata: Option<String>,
     #[arg(long, value_enum, default_value_t = TestKind::Welch)]
     pub test: TestKind,
     #[arg(long, value_enum, default_value_t = Side::Both)]
@@ -147,7 +158,10 @@ impl ScanArgs {
             sample_column: self.sample_column.clone(),
             id_column: self.id_column.clone(),
             group: self.group.clone(),
-            levels: self.levels.as_ref().map(|l| (l[0].clone(), l[1].clone())),
+            levels: self.levels.clone(),
+            trait_column: self.trait_column.clone(),
+            pair: self.pair.clone(),
+            strata: self.strata.clone(),
             test: self.test,
             side: self.side,
             perms: self.perms,
@@ -196,10 +210,12 @@ pub fn main_with_args(args: impl IntoIterator<Item = std::ffi::OsString>) -> i32
 fn dispatch(cli: Cli) -> Result<()> {
     match cli.command {
         Command::Scan(args) => {
-            if args.levels.as_ref().is_some_and(|l| l.len() != 2) {
-                return Err(RiffleError::options(
-                    "--levels takes exactly two levels, A,B (effects are B minus A)",
-                ));
+            let two_levels = !args.test.is_k_group();
+            if two_levels && args.levels.as_ref().is_some_and(|l| l.len() != 2) {
+                return Err(RiffleError::options(format!(
+                    "--levels takes exactly two levels, A,B, for --test {} (effects are B minus A)",
+                    args.test.name()
+                )));
             }
             let options = args.to_options();
             let summary = scan::run_scan(&options, &STOP)?;

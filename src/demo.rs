@@ -19,7 +19,7 @@ pub fn run_demo(out: &Path, threads: Option<usize>, stop: &AtomicBool) -> Result
     std::fs::write(&matrix, DEMO_MATRIX).at(&matrix)?;
     std::fs::write(&sheet, DEMO_SHEET).at(&sheet)?;
     let mut options = ScanOptions::new(&matrix, &sheet, "group", out);
-    options.levels = Some(("control".into(), "heat".into()));
+    options.levels = Some(vec!["control".into(), "heat".into()]);
     options.test = TestKind::Welch;
     options.perms = 5_000;
     options.seed = 20261202;

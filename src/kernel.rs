@@ -8,7 +8,8 @@
 //! so the counts equal an all-f64 computation.
 
 use crate::design::Relabelings;
-use crate::stats::prepare::{PrepScratch, Prepared, Status, TestSpec};
+use crate::stats::prepare::{Assignment, PrepScratch, Prepared, Status, TestSpec};
+use crate::stats::DesignKind;
 
 use crate::stats::TestKind;
 
@@ -60,13 +61,21 @@ pub struct KernelScratch {
 }
 
 impl Kernel {
+    /// `observed` is the observed class of each unit (group tests; empty
+    /// otherwise).
     pub fn new(spec: TestSpec, observed: Vec<u8>, relabel: Relabelings) -> Self {
-        let n = observed.len();
+        let n = spec.units();
+        let r = spec.width();
         let b = relabel.count;
-        let mut weights = vec![0f32; n * b];
+        let columns = b * r;
+        let mut weights = vec![0f32; n * columns];
+        let mut unit_weights = vec![0f64; n * r];
         for j in 0..b {
-            for (i, &l) in relabel.row(j).iter().enumerate() {
-                weights[i * b + j] = f32::from(l);
+            spec.weights(assignment(&spec, &relabel, j), &mut unit_weights);
+            for i in 0..n {
+                for c in 0..r {
+                    weights[i * columns + j * r + c] = unit_weights[i * r + c] as f32;
+                }
             }
         }
         Kernel {
@@ -95,7 +104,12 @@ impl Kernel {
         &self.spec
     }
 
-    /// Runs one chunk: `raw` is `rows x n` row-major. Without `count`, only
+    /// Units per feature (samples, or pairs).
+    fn units(&self) -> usize {
+        self.spec.units()
+    }
+
+    /// Runs one chunk: `raw` is `rows x raw_width` row-major. Without `count`, only
     /// screens and standardizes.
     pub fn run_chunk(
         &self,
@@ -104,14 +118,15 @@ impl Kernel {
         count: bool,
         s: &mut KernelScratch,
     ) -> ChunkOutcome {
-        let n = self.observed.len();
+        let n = self.units();
+        let width = self.spec.raw_width();
         let b_total = self.relabel.count;
         s.z64.resize(rows * n, 0.0);
         s.tested.clear();
         let mut features = Vec::with_capacity(rows);
         for r in 0..rows {
             let prepared = self.spec.prepare(
-                &raw[r * n..(r + 1) * n],
+                &raw[r * width..(r + 1) * width],
                 &self.observed,
                 &mut s.z64[r * n..(r + 1) * n],
                 &mut s.prep,
@@ -191,7 +206,7 @@ impl Kernel {
         reached: &mut [u64],
         scratch: &mut KernelScratch,
     ) {
-        let n = self.observed.len();
+        let n = self.units();
         let rows_view = self.load_rows(standardized, obs, &mut scratch.rows);
         let base = state.col0;
         self.for_each_tile_row(
@@ -252,7 +267,7 @@ impl Kernel {
                 .sq32
                 .extend(standardized.iter().map(|&v| (v * v) as f32));
         }
-        let n = self.observed.len();
+        let n = self.units();
         buffers.band.clear();
         for (k, &o) in obs.iter().enumerate() {
             let abs_sum: f64 = standardized[k * n..(k + 1) * n]
@@ -280,9 +295,10 @@ impl Kernel {
         tiles: &mut TileBuffers,
         mut visit: impl FnMut(usize, usize, &[f32]),
     ) {
-        let n = self.observed.len();
+        let n = self.units();
+        let r = self.spec.width();
         let squares = self.spec.test.needs_squares();
-        tiles.sums.resize(ROW_TILE * COL_TILE, 0.0);
+        tiles.sums.resize(ROW_TILE * COL_TILE * r, 0.0);
         tiles
             .squares
             .resize(if squares { ROW_TILE * COL_TILE } else { 0 }, 0.0);
@@ -291,39 +307,82 @@ impl Kernel {
             let rt = ROW_TILE.min(rows.rows - row0);
             for col0 in (col_start..col_end).step_by(COL_TILE) {
                 let ct = COL_TILE.min(col_end - col0);
-                self.multiply(&rows.z32[row0 * n..], rt, col0, ct, &mut tiles.sums);
+                self.multiply(&rows.z32[row0 * n..], rt, col0 * r, ct * r, &mut tiles.sums);
                 if squares {
                     self.multiply(&rows.sq32[row0 * n..], rt, col0, ct, &mut tiles.squares);
                 }
                 for i in 0..rt {
-                    let tile = &mut tiles.sums[i * ct..(i + 1) * ct];
+                    let wide = &mut tiles.sums[i * ct * r..(i + 1) * ct * r];
                     if squares {
-                        self.welch_tile(tile, &tiles.squares[i * ct..(i + 1) * ct]);
+                        self.welch_tile(wide, &tiles.squares[i * ct..(i + 1) * ct]);
+                    } else if r > 1 {
+                        self.between_groups_tile(wide, ct);
                     } else {
                         let side = self.spec.side;
-                        tile.iter_mut().for_each(|v| *v = side.orient32(*v));
+                        wide.iter_mut().for_each(|v| *v = side.orient32(*v));
                     }
-                    visit(row0 + i, col0, tile);
+                    visit(row0 + i, col0, &wide[..ct]);
                 }
             }
         }
     }
 
-    /// Largest possible |f32 - f64| of a kernel statistic for a feature.
+    /// Compacts `cols` groups of `width` class sums into between-group sums
+    /// of squares, in place (entry j is read before it is overwritten).
+    fn between_groups_tile(&self, wide: &mut [f32], cols: usize) {
+        let r = self.spec.width();
+        let inverse: Vec<f32> = self
+            .spec
+            .group_sizes
+            .iter()
+            .map(|&g| 1.0 / g as f32)
+            .collect();
+        for j in 0..cols {
+            let mut rest = 0.0f32;
+            let mut ssb = 0.0f32;
+            for c in 0..r {
+                let s = wide[j * r + c];
+                rest += s;
+                ssb += s * s * inverse[c + 1];
+            }
+            wide[j] = ssb + rest * rest * inverse[0];
+        }
+    }
+
+    /// Largest possible |f32 - f64| of a kernel statistic for a feature:
+    /// each weighted sum errs by at most delta (rounding of z and of the
+    /// weights to f32 plus n accumulations, over sum |z w|).
     fn error_band(&self, kernel_obs: f64, abs_sum: f64) -> f64 {
-        let n = self.observed.len() as f64;
+        let n = self.units() as f64;
+        let delta = 2.0 * (n + 2.0) * F32_UNIT * abs_sum + 1e-12;
         match self.spec.test {
             TestKind::Welch => 1e-3 * (1.0 + kernel_obs.abs()),
-            // Group sums: rounding of each z to f32 plus n accumulations.
-            _ => 2.0 * (n + 2.0) * F32_UNIT * abs_sum + 1e-12,
+            TestKind::Anova | TestKind::Kruskal => {
+                // d(s^2/g) <= (2 |s| delta + delta^2) / g with |s| <= sqrt(g (n-1)),
+                // and class 0's sum carries the others' errors.
+                let k = self.spec.group_sizes.len() as f64;
+                let spread: f64 = self
+                    .spec
+                    .group_sizes
+                    .iter()
+                    .map(|&g| {
+                        let g = g as f64;
+                        (2.0 * (g * (n - 1.0)).sqrt() * k * delta + k * k * delta * delta) / g
+                    })
+                    .sum();
+                2.0 * spread + 1e-12
+            }
+            // |t| <= sqrt(n) for a standardized trait, so sum |z t| <= sqrt(n) sum |z|.
+            TestKind::Pearson | TestKind::Spearman => delta * (1.0 + n.sqrt()),
+            _ => delta,
         }
     }
 
     /// An upper bound of `error_band` over all features (sum |z| is at most
     /// sqrt(n (n - 1)) for a standardized row).
     fn global_band(&self) -> f64 {
-        let n = self.observed.len() as f64;
-        2.0 * (n + 2.0) * F32_UNIT * (n * (n - 1.0)).sqrt() + 1e-12
+        let n = self.units() as f64;
+        self.error_band(0.0, (n * (n - 1.0)).sqrt())
     }
 
     /// An f32 value below this cannot belong to an f64 statistic above `max`.
@@ -335,10 +394,12 @@ impl Kernel {
         (max - chunk_band - relative - 1e-6 * (1.0 + max.abs())) as f32
     }
 
+    /// `out = a (rows x n) * weights[:, col0 .. col0 + cols]` in f32, where
+    /// columns count weight columns (relabelings times width).
     fn multiply(&self, a: &[f32], rows: usize, col0: usize, cols: usize, out: &mut [f32]) {
-        let n = self.observed.len();
-        let b_total = self.relabel.count;
-        // SAFETY: the slices cover rows x n, n x cols (at stride b_total) and
+        let n = self.units();
+        let total = self.relabel.count * self.spec.width();
+        // SAFETY: the slices cover rows x n, n x cols (at stride total) and
         // rows x cols elements with the strides given.
         unsafe {
             matrixmultiply::sgemm(
@@ -350,7 +411,7 @@ impl Kernel {
                 n as isize,
                 1,
                 self.weights.as_ptr().add(col0),
-                b_total as isize,
+                total as isize,
                 1,
                 0.0,
                 out.as_mut_ptr(),
@@ -415,7 +476,10 @@ impl Kernel {
             clear = 0;
         }
         let mut count = u64::from(clear);
-        let exact_at = |j: usize| self.spec.kernel_stat(z, self.relabel.row(col0 + j));
+        let exact_at = |j: usize| {
+            self.spec
+                .kernel_stat_with(z, assignment(&self.spec, &self.relabel, col0 + j))
+        };
         if unsure {
             for (j, &v) in tile.iter().enumerate() {
                 let exact = if v > row.above {
@@ -589,6 +653,17 @@ struct RowsView<'a> {
     z32: &'a [f32],
     sq32: &'a [f32],
     band: &'a [f64],
+}
+
+/// Relabelling `b` in the form the test's statistic needs.
+fn assignment<'a>(spec: &TestSpec, relabel: &'a Relabelings, b: usize) -> Assignment<'a> {
+    if relabel.sign_flips {
+        Assignment::Flips(relabel.row(b))
+    } else if spec.test.design() == DesignKind::Trait {
+        Assignment::Sources(relabel.source_row(b))
+    } else {
+        Assignment::Classes(relabel.row(b))
+    }
 }
 
 /// Statistics this close to the observed one count as reached: equal

@@ -7,7 +7,7 @@ use std::sync::atomic::AtomicBool;
 use std::sync::Arc;
 use std::time::Instant;
 
-use crate::design::{Relabelings, SampleSheet, TwoGroupDesign};
+use crate::design::{DesignColumns, Relabelings, SampleSheet, StudyDesign};
 use crate::error::{IoContext, Result, RiffleError};
 use crate::input::{self, MatrixInfo};
 use crate::kernel::{Kernel, NullHistogram, UpperTail};
@@ -17,7 +17,7 @@ use crate::pipeline::{self, ChunkSink, FinishedChunk, PipelineOptions, PipelineS
 use crate::progress::ProgressReporter;
 use crate::spill::{self, PSource, Record, SpillReader, SpillWriter};
 use crate::stats::prepare::{Status, TestSpec};
-use crate::stats::{Side, Sizes, TestKind};
+use crate::stats::{DesignKind, Side, Sizes, TestKind};
 use crate::stepdown::{rank_pass, reverse_and_scatter, RowSorter};
 
 /// Everything that defines a scan. Serialized into `run.json`.
@@ -28,7 +28,15 @@ pub struct ScanOptions {
     pub sample_column: String,
     pub id_column: String,
     pub group: String,
-    pub levels: Option<(String, String)>,
+    /// Levels of the group column to compare (two-group tests: A,B with
+    /// effects B minus A; k-group tests: any number, default all).
+    pub levels: Option<Vec<String>>,
+    /// Numeric sample-sheet column for correlation tests.
+    pub trait_column: Option<String>,
+    /// Pair id column for paired tests.
+    pub pair: Option<String>,
+    /// Strata column: relabelings stay within strata.
+    pub strata: Option<String>,
     pub test: TestKind,
     pub side: Side,
     pub perms: usize,
@@ -67,6 +75,9 @@ impl ScanOptions {
             id_column: "feature".into(),
             group: group.into(),
             levels: None,
+            trait_column: None,
+            pair: None,
+            strata: None,
             test: TestKind::Welch,
             side: Side::Both,
             perms: 10_000,
@@ -120,11 +131,15 @@ pub const RUN_RECORD: &str = "run.json";
 pub fn run_scan(options: &ScanOptions, stop: &AtomicBool) -> Result<ScanSummary> {
     validate(options)?;
     let sheet = SampleSheet::read(&options.samples, &options.sample_column)?;
-    let levels = options
-        .levels
-        .as_ref()
-        .map(|(a, b)| (a.as_str(), b.as_str()));
-    let design = TwoGroupDesign::from_sheet(&sheet, &options.group, levels)?;
+    let columns = DesignColumns {
+        group: (!options.group.is_empty()).then(|| options.group.clone()),
+        levels: options.levels.clone(),
+        trait_column: options.trait_column.clone(),
+        pair: options.pair.clone(),
+        strata: options.strata.clone(),
+    };
+    check_design_options(options)?;
+    let design = StudyDesign::from_sheet(&sheet, options.test.design(), &columns)?;
     let source = input::open_matrix(&options.matrix, &options.id_column, &design.samples)?;
     run_scan_on(source, &design, options, stop)
 }
@@ -133,7 +148,7 @@ pub fn run_scan(options: &ScanOptions, stop: &AtomicBool) -> Result<ScanSummary>
 /// `design.samples`; `options.matrix` and `options.samples` are only recorded.
 pub fn run_scan_on(
     source: Box<dyn input::FeatureSource>,
-    design: &TwoGroupDesign,
+    design: &StudyDesign,
     options: &ScanOptions,
     stop: &AtomicBool,
 ) -> Result<ScanSummary> {
@@ -141,30 +156,26 @@ pub fn run_scan_on(
     validate(options)?;
     let info = source.info().clone();
 
-    let relabel = Relabelings::draw(&design.labels, options.perms, options.seed);
-    let spec = TestSpec {
-        test: options.test,
-        side: options.side,
-        sizes: Sizes {
-            n_a: design.n_a,
-            n_b: design.n_b,
-        },
-    };
+    let spec = test_spec(options, design)?;
+    let trait_classes = design.trait_classes();
+    let relabel =
+        Relabelings::generate(&design.scheme(&trait_classes), options.perms, options.seed);
     let b_total = relabel.count;
     let exact = relabel.exact;
     let kernel = Arc::new(
-        Kernel::new(spec, design.labels.clone(), relabel).with_pooled_null(options.pooled_null),
+        Kernel::new(spec.clone(), design.classes.clone(), relabel)
+            .with_pooled_null(options.pooled_null),
     );
 
     prepare_out_dir(&options.out)?;
     let spill_dir = options.out.join(SPILL_DIR);
     let step_down = options.maxt == MaxtMode::StepDown;
-    let mut pipeline_options = pipeline_options(options, design.n(), b_total);
+    let mut pipeline_options = pipeline_options(options, design.samples.len(), b_total);
     pipeline_options.prepare_only = step_down;
     let sorter = if step_down {
         Some(RowSorter::new(
             &spill_dir.join("rank-runs"),
-            design.n(),
+            design.units(),
             options.memory_bytes / 4,
         )?)
     } else {
@@ -179,11 +190,11 @@ pub fn run_scan_on(
             PSource::Counted
         },
         b_total,
-        spec,
+        sizes: spec.sizes,
         tested: 0,
         untested: Default::default(),
         sorter,
-        n: design.n(),
+        n: design.units(),
         null_hist: options.pooled_null.then(NullHistogram::empty),
     };
     let mut reporter = ProgressReporter::new(
@@ -238,10 +249,10 @@ pub fn run_scan_on(
         untested: untested.iter().map(|(s, n)| (s.to_string(), *n)).collect(),
         relabelings: b_total,
         exact,
-        n_a: design.n_a,
-        n_b: design.n_b,
-        level_a: design.level_a.clone(),
-        level_b: design.level_b.clone(),
+        n_a: spec.sizes.n_a,
+        n_b: spec.sizes.n_b,
+        level_a: design.levels.first().cloned().unwrap_or_default(),
+        level_b: design.levels.get(1).cloned().unwrap_or_default(),
         pi0: finalized.perm.pi0,
         bh_hits: hits(&finalized.perm, Method::Bh),
         fwer_hits_05: finalized.fwer_hits_05,
@@ -252,6 +263,106 @@ pub fn run_scan_on(
     };
     write_run_record(options, &info, design, &stats, &finalized, &summary)?;
     Ok(summary)
+}
+
+/// Options that name design columns the chosen test does not use.
+fn check_design_options(options: &ScanOptions) -> Result<()> {
+    let test = options.test.name();
+    match options.test.design() {
+        DesignKind::Trait => {
+            if options.pair.is_some() {
+                return Err(RiffleError::options(format!(
+                    "--pair does not go with --test {test}: pairs are for paired-t or signed-rank"
+                )));
+            }
+        }
+        DesignKind::Groups => {
+            if options.trait_column.is_some() {
+                return Err(RiffleError::options(format!(
+                    "--trait does not go with --test {test}: use --test pearson or spearman"
+                )));
+            }
+            if options.pair.is_some() {
+                return Err(RiffleError::options(format!(
+                    "--pair does not go with --test {test}: use --test paired-t or signed-rank"
+                )));
+            }
+        }
+        DesignKind::Paired => {
+            if options.trait_column.is_some() {
+                return Err(RiffleError::options(format!(
+                    "--trait does not go with --test {test}"
+                )));
+            }
+            if options.strata.is_some() {
+                return Err(RiffleError::options(
+                    "--strata with paired tests: sign flips already stay within each pair; \
+                     leave --strata out",
+                ));
+            }
+        }
+    }
+    Ok(())
+}
+
+/// The test's fixed parts from the design.
+fn test_spec(options: &ScanOptions, design: &StudyDesign) -> Result<TestSpec> {
+    let test = options.test;
+    let n = design.units();
+    Ok(match test.design() {
+        DesignKind::Groups if test.is_k_group() => {
+            if options.side != Side::Both {
+                return Err(RiffleError::options(format!(
+                    "--test {} has no direction (F and H grow with any difference); use --side both",
+                    test.name()
+                )));
+            }
+            TestSpec {
+                test,
+                side: Side::Both,
+                sizes: Sizes { n_a: n, n_b: 0 },
+                group_sizes: design.group_sizes.clone(),
+                trait_weights: Vec::new(),
+            }
+        }
+        DesignKind::Groups => {
+            if design.levels.len() != 2 {
+                return Err(RiffleError::bad_input(
+                    &options.samples,
+                    format!("column '{}'", options.group),
+                    format!(
+                        "expected exactly two levels for --test {}, found {} ({}); pick two with \
+                         --levels A,B, or compare all with --test anova or kruskal",
+                        test.name(),
+                        design.levels.len(),
+                        design.levels.join(", ")
+                    ),
+                ));
+            }
+            TestSpec::two_group(
+                test,
+                options.side,
+                Sizes {
+                    n_a: design.group_sizes[0],
+                    n_b: design.group_sizes[1],
+                },
+            )
+        }
+        DesignKind::Trait => TestSpec {
+            test,
+            side: options.side,
+            sizes: Sizes { n_a: n, n_b: 0 },
+            group_sizes: Vec::new(),
+            trait_weights: design.trait_weights(test == TestKind::Spearman),
+        },
+        DesignKind::Paired => TestSpec {
+            test,
+            side: options.side,
+            sizes: Sizes { n_a: n, n_b: n },
+            group_sizes: Vec::new(),
+            trait_weights: Vec::new(),
+        },
+    })
 }
 
 fn validate(options: &ScanOptions) -> Result<()> {
@@ -307,7 +418,7 @@ struct SpillSink {
     null_max: Vec<f64>,
     source: PSource,
     b_total: usize,
-    spec: TestSpec,
+    sizes: Sizes,
     tested: u64,
     untested: std::collections::BTreeMap<&'static str, u64>,
 }
@@ -349,8 +460,8 @@ impl ChunkSink for SpillSink {
                 p_maxt: f64::NAN,
                 exceed: f.exceed,
                 n_relabel: if tested { self.b_total as u64 } else { 0 },
-                n_a: self.spec.sizes.n_a as u32,
-                n_b: self.spec.sizes.n_b as u32,
+                n_a: self.sizes.n_a as u32,
+                n_b: self.sizes.n_b as u32,
                 status: p.status,
                 source: self.source,
             };
@@ -664,7 +775,7 @@ fn finalize(
 fn write_run_record(
     options: &ScanOptions,
     info: &MatrixInfo,
-    design: &TwoGroupDesign,
+    design: &StudyDesign,
     stats: &PipelineStats,
     finalized: &Finalized,
     summary: &ScanSummary,

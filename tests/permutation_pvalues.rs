@@ -47,6 +47,7 @@ fn textbook_statistic(test: TestKind, x: &[f64], in_b: &[bool]) -> f64 {
                     })
                     .sum::<f64>()
         }
+        other => unreachable!("{other:?} is not a two-group test"),
     }
 }
 

@@ -3,11 +3,13 @@
 
 pub mod relabel;
 pub mod sheet;
+pub mod study;
 
 use std::collections::BTreeMap;
 
 pub use relabel::Relabelings;
 pub use sheet::SampleSheet;
+pub use study::{DesignColumns, StudyDesign};
 
 use crate::error::{Result, RiffleError};
 

@@ -368,7 +368,10 @@ mod tests {
         assert!(!r.exact);
         for b in 0..r.count {
             for (u, &src) in r.source_row(b).iter().enumerate() {
-                assert_eq!(strata[u], strata[src as usize], "relabelling {b} moves unit {src}");
+                assert_eq!(
+                    strata[u], strata[src as usize],
+                    "relabelling {b} moves unit {src}"
+                );
                 assert_eq!(r.row(b)[u], classes[src as usize]);
             }
         }

@@ -16,10 +16,34 @@ use statrs::distribution::{ContinuousCDF, Normal, StudentsT};
 )]
 #[serde(rename_all = "kebab-case")]
 pub enum TestKind {
+    /// Welch t (two groups).
     Welch,
+    /// Pooled-variance t (two groups).
     Student,
+    /// Difference in means (two groups).
     MeanDiff,
+    /// Wilcoxon–Mann–Whitney rank-sum (two groups).
     RankSum,
+    /// One-way F (k groups).
+    Anova,
+    /// Kruskal–Wallis H (k groups).
+    Kruskal,
+    /// Pearson correlation with a numeric trait.
+    Pearson,
+    /// Spearman rank correlation with a numeric trait.
+    Spearman,
+    /// Paired t on within-pair differences (sign flips).
+    PairedT,
+    /// Wilcoxon signed-rank on within-pair differences (sign flips).
+    SignedRank,
+}
+
+/// What kind of sample sheet information a test needs.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum DesignKind {
+    Groups,
+    Trait,
+    Paired,
 }
 
 impl TestKind {
@@ -29,7 +53,24 @@ impl TestKind {
             TestKind::Student => "student",
             TestKind::MeanDiff => "mean-diff",
             TestKind::RankSum => "rank-sum",
+            TestKind::Anova => "anova",
+            TestKind::Kruskal => "kruskal",
+            TestKind::Pearson => "pearson",
+            TestKind::Spearman => "spearman",
+            TestKind::PairedT => "paired-t",
+            TestKind::SignedRank => "signed-rank",
         }
+    }
+    pub fn design(self) -> DesignKind {
+        match self {
+            TestKind::Pearson | TestKind::Spearman => DesignKind::Trait,
+            TestKind::PairedT | TestKind::SignedRank => DesignKind::Paired,
+            _ => DesignKind::Groups,
+        }
+    }
+    /// Tests of k >= 2 groups by a between-group sum of squares.
+    pub fn is_k_group(self) -> bool {
+        matches!(self, TestKind::Anova | TestKind::Kruskal)
     }
     pub fn uses_ranks(self) -> bool {
         self == TestKind::RankSum
@@ -153,6 +194,35 @@ pub fn t_pvalue(t: f64, df: f64, side: Side) -> f64 {
         Side::Both => (2.0 * dist.sf(t.abs())).min(1.0),
         Side::Greater => dist.sf(t),
         Side::Less => dist.cdf(t),
+    }
+}
+
+/// Upper tail of the F distribution.
+pub fn f_pvalue(f: f64, df1: f64, df2: f64) -> f64 {
+    if f.is_infinite() {
+        return 0.0;
+    }
+    match statrs::distribution::FisherSnedecor::new(df1, df2) {
+        Ok(d) => d.sf(f),
+        Err(_) => f64::NAN,
+    }
+}
+
+/// Upper tail of the chi-squared distribution.
+pub fn chi2_pvalue(x: f64, df: f64) -> f64 {
+    match statrs::distribution::ChiSquared::new(df) {
+        Ok(d) => d.sf(x),
+        Err(_) => f64::NAN,
+    }
+}
+
+/// Tail probability of a standard normal score.
+pub fn normal_pvalue(z: f64, side: Side) -> f64 {
+    let normal = Normal::new(0.0, 1.0).expect("standard normal");
+    match side {
+        Side::Both => (2.0 * normal.sf(z.abs())).min(1.0),
+        Side::Greater => normal.sf(z),
+        Side::Less => normal.cdf(z),
     }
 }
 

@@ -3,7 +3,8 @@
 //! model-based p-value.
 
 use super::{
-    mid_ranks, rank_sum_pvalue, student_t, t_pvalue, welch_t, GroupSums, Side, Sizes, TestKind,
+    chi2_pvalue, f_pvalue, mid_ranks, normal_pvalue, rank_sum_pvalue, student_t, t_pvalue, welch_t,
+    DesignKind, GroupSums, Side, Sizes, TestKind,
 };
 
 /// Why a feature has (or has no) p-value. Stored as one byte in the spill.
@@ -40,13 +41,36 @@ impl Status {
     }
 }
 
-/// The fixed parts of a two-group test shared by all features.
-#[derive(Debug, Clone, Copy)]
+/// The fixed parts of a test shared by all features.
+#[derive(Debug, Clone)]
 pub struct TestSpec {
     pub test: TestKind,
     pub side: Side,
+    /// Two groups: sizes of A and B. Paired: pairs in both. Other designs:
+    /// `n_a` is the number of samples, `n_b` 0.
     pub sizes: Sizes,
+    /// Samples per class (group tests, two groups included).
+    pub group_sizes: Vec<usize>,
+    /// Correlation tests: the standardized trait (Pearson) or its
+    /// standardized mid-ranks (Spearman), per unit.
+    pub trait_weights: Vec<f64>,
 }
+
+/// Which relabelling a kernel statistic is computed for.
+#[derive(Debug, Clone, Copy)]
+pub enum Assignment<'a> {
+    /// Class of each unit (group tests).
+    Classes(&'a [u8]),
+    /// Unit whose trait value each unit takes (correlation tests).
+    Sources(&'a [u32]),
+    /// 1 where a unit's sign is flipped (paired tests).
+    Flips(&'a [u8]),
+    /// The observed design: observed classes, trait order, no flips.
+    Observed(&'a [u8]),
+}
+
+/// Most classes a group test may have.
+pub const MAX_GROUPS: usize = 32;
 
 #[derive(Debug, Clone, Copy)]
 pub struct Prepared {
@@ -80,20 +104,152 @@ impl Prepared {
 pub struct PrepScratch {
     order: Vec<usize>,
     ranks: Vec<f64>,
+    diffs: Vec<f64>,
+    magnitudes: Vec<f64>,
+    signed: Vec<f64>,
 }
 
 impl TestSpec {
-    /// Kernel statistic of a standardized row under `labels`, in f64.
-    #[inline]
-    pub fn kernel_stat(&self, z: &[f64], labels: &[u8]) -> f64 {
-        let sums = GroupSums::of(z, labels);
-        match self.test {
-            TestKind::Welch => self.side.orient(welch_t(sums, self.sizes).0),
-            _ => self.side.orient(sums.s1),
+    pub fn two_group(test: TestKind, side: Side, sizes: Sizes) -> Self {
+        TestSpec {
+            test,
+            side,
+            sizes,
+            group_sizes: vec![sizes.n_a, sizes.n_b],
+            trait_weights: Vec::new(),
         }
     }
 
-    /// Screens and standardizes `raw` into `z`; `labels` is the observed labelling.
+    /// Units the kernel sees per feature: samples, or pairs.
+    pub fn units(&self) -> usize {
+        match self.test.design() {
+            DesignKind::Paired => self.sizes.n_a,
+            DesignKind::Groups => self.group_sizes.iter().sum(),
+            DesignKind::Trait => self.trait_weights.len(),
+        }
+    }
+
+    /// Matrix values read per feature (pairs read both of their samples).
+    pub fn raw_width(&self) -> usize {
+        match self.test.design() {
+            DesignKind::Paired => 2 * self.sizes.n_a,
+            _ => self.units(),
+        }
+    }
+
+    /// Weight columns per relabelling in the kernel's GEMM.
+    pub fn width(&self) -> usize {
+        match self.test.design() {
+            DesignKind::Groups if self.test.is_k_group() => self.group_sizes.len() - 1,
+            _ => 1,
+        }
+    }
+
+    /// The `units x width` weights of one relabelling, row-major.
+    pub fn weights(&self, assignment: Assignment<'_>, out: &mut [f64]) {
+        let r = self.width();
+        let n = self.units();
+        out[..n * r].fill(0.0);
+        match assignment {
+            Assignment::Classes(classes) | Assignment::Observed(classes)
+                if self.test.design() == DesignKind::Groups =>
+            {
+                for (i, &c) in classes.iter().enumerate().take(n) {
+                    if c >= 1 {
+                        out[i * r + (c as usize - 1)] = 1.0;
+                    }
+                }
+            }
+            Assignment::Sources(src) => {
+                for (i, &s) in src.iter().enumerate().take(n) {
+                    out[i] = self.trait_weights[s as usize];
+                }
+            }
+            Assignment::Flips(flips) => {
+                for (i, &f) in flips.iter().enumerate().take(n) {
+                    out[i] = if f == 1 { -1.0 } else { 1.0 };
+                }
+            }
+            Assignment::Observed(_) if self.test.design() == DesignKind::Trait => {
+                out[..n].copy_from_slice(&self.trait_weights);
+            }
+            Assignment::Observed(_) => out[..n].fill(1.0),
+            Assignment::Classes(_) => {}
+        }
+    }
+
+    /// Kernel statistic of a standardized row under an assignment, in f64.
+    pub fn kernel_stat_with(&self, z: &[f64], assignment: Assignment<'_>) -> f64 {
+        let mut sums = [0.0f64; MAX_GROUPS];
+        let mut q1 = 0.0;
+        match assignment {
+            Assignment::Classes(classes) | Assignment::Observed(classes)
+                if self.test.design() == DesignKind::Groups =>
+            {
+                for (&v, &c) in z.iter().zip(classes) {
+                    if c >= 1 {
+                        sums[c as usize - 1] += v;
+                        if c == 1 {
+                            q1 += v * v;
+                        }
+                    }
+                }
+            }
+            Assignment::Sources(src) => {
+                for (&v, &s) in z.iter().zip(src) {
+                    sums[0] += v * self.trait_weights[s as usize];
+                }
+            }
+            Assignment::Flips(flips) => {
+                for (&v, &f) in z.iter().zip(flips) {
+                    sums[0] += if f == 1 { -v } else { v };
+                }
+            }
+            Assignment::Observed(_) if self.test.design() == DesignKind::Trait => {
+                for (&v, &t) in z.iter().zip(&self.trait_weights) {
+                    sums[0] += v * t;
+                }
+            }
+            Assignment::Observed(_) => sums[0] = z.iter().sum(),
+            Assignment::Classes(_) => {}
+        }
+        self.finish(&sums[..self.width()], q1)
+    }
+
+    /// Two-group shorthand of `kernel_stat_with`.
+    #[inline]
+    pub fn kernel_stat(&self, z: &[f64], labels: &[u8]) -> f64 {
+        self.kernel_stat_with(z, Assignment::Classes(labels))
+    }
+
+    /// Kernel statistic from the weighted sums of one relabelling (and the
+    /// group-B sum of squares, Welch only).
+    #[inline]
+    pub fn finish(&self, sums: &[f64], q1: f64) -> f64 {
+        match self.test {
+            TestKind::Welch => self
+                .side
+                .orient(welch_t(GroupSums { s1: sums[0], q1 }, self.sizes).0),
+            TestKind::Anova | TestKind::Kruskal => self.between_groups(sums),
+            _ => self.side.orient(sums[0]),
+        }
+    }
+
+    /// Between-group sum of squares of a standardized row (total sum 0, so
+    /// class 0's sum is minus the others').
+    #[inline]
+    pub fn between_groups(&self, sums: &[f64]) -> f64 {
+        let mut rest = 0.0;
+        let mut ssb = 0.0;
+        for (c, &s) in sums.iter().enumerate() {
+            rest += s;
+            ssb += s * s / self.group_sizes[c + 1] as f64;
+        }
+        ssb + rest * rest / self.group_sizes[0] as f64
+    }
+
+    /// Screens and standardizes `raw` into `z` (units long); `labels` is
+    /// the observed class of each unit (group tests; ignored otherwise).
     pub fn prepare(
         &self,
         raw: &[f64],
@@ -101,13 +257,49 @@ impl TestSpec {
         z: &mut [f64],
         scratch: &mut PrepScratch,
     ) -> Prepared {
-        let sizes = self.sizes;
         if raw.iter().any(|v| v.is_nan()) {
             return Prepared::untested(Status::MissingValues, f64::NAN);
         }
         if raw.iter().any(|v| v.is_infinite()) {
             return Prepared::untested(Status::NonFinite, f64::NAN);
         }
+        match self.test.design() {
+            DesignKind::Groups if self.test.is_k_group() => {
+                self.prepare_k_groups(raw, labels, z, scratch)
+            }
+            DesignKind::Groups => self.prepare_two_groups(raw, labels, z, scratch),
+            DesignKind::Trait => self.prepare_trait(raw, z, scratch),
+            DesignKind::Paired => self.prepare_paired(raw, z, scratch),
+        }
+    }
+
+    fn finish_prepared(
+        &self,
+        z: &[f64],
+        labels: &[u8],
+        abs_sum: f64,
+        effect: f64,
+        statistic: f64,
+        p_param: f64,
+    ) -> Prepared {
+        Prepared {
+            status: Status::Tested,
+            effect,
+            statistic,
+            p_param,
+            kernel_obs: self.kernel_stat_with(z, Assignment::Observed(labels)),
+            abs_sum,
+        }
+    }
+
+    fn prepare_two_groups(
+        &self,
+        raw: &[f64],
+        labels: &[u8],
+        z: &mut [f64],
+        scratch: &mut PrepScratch,
+    ) -> Prepared {
+        let sizes = self.sizes;
         let (mut sum_a, mut sum_b) = (0.0, 0.0);
         for (&v, &l) in raw.iter().zip(labels) {
             if l == 1 {
@@ -148,7 +340,7 @@ impl TestSpec {
                 let t = student_t(sums.s1, sizes);
                 (effect, t_pvalue(t, sizes.n() as f64 - 2.0, self.side))
             }
-            TestKind::RankSum => {
+            _ => {
                 let nb = sizes.n_b as f64;
                 let rank_sum_b: f64 = scratch
                     .ranks
@@ -161,19 +353,139 @@ impl TestSpec {
                 (u, rank_sum_pvalue(u, sizes, tie_sum, self.side))
             }
         };
-        Prepared {
-            status: Status::Tested,
-            effect,
-            statistic,
-            p_param,
-            kernel_obs: self.kernel_stat(z, labels),
-            abs_sum,
+        self.finish_prepared(z, labels, abs_sum, effect, statistic, p_param)
+    }
+
+    /// One-way F or Kruskal–Wallis H; effect = eta squared (share of the
+    /// total sum of squares, of values or mid-ranks, between groups).
+    fn prepare_k_groups(
+        &self,
+        raw: &[f64],
+        labels: &[u8],
+        z: &mut [f64],
+        scratch: &mut PrepScratch,
+    ) -> Prepared {
+        let first = raw[0];
+        if raw.iter().all(|&v| v == first) {
+            return Prepared::untested(Status::Constant, f64::NAN);
         }
+        if self.test == TestKind::Anova && no_within_variance(raw, labels) {
+            return Prepared::untested(Status::NoWithinVariance, f64::NAN);
+        }
+        let source: &[f64] = if self.test == TestKind::Kruskal {
+            scratch.ranks.resize(raw.len(), 0.0);
+            mid_ranks(raw, &mut scratch.order, &mut scratch.ranks);
+            &scratch.ranks
+        } else {
+            raw
+        };
+        let abs_sum = standardize(source, z);
+        let k = self.group_sizes.len();
+        let n = z.len() as f64;
+        let mut sums = [0.0f64; MAX_GROUPS];
+        for (&v, &c) in z.iter().zip(labels) {
+            if c >= 1 {
+                sums[c as usize - 1] += v;
+            }
+        }
+        let ssb = self.between_groups(&sums[..k - 1]);
+        let eta2 = ssb / (n - 1.0);
+        let (statistic, p_param) = if self.test == TestKind::Anova {
+            let f = (ssb / (k as f64 - 1.0)) / (((n - 1.0) - ssb).max(0.0) / (n - k as f64));
+            (f, f_pvalue(f, k as f64 - 1.0, n - k as f64))
+        } else {
+            // Standardized mid-ranks: H = (n - 1) SSB / SST with SST = n - 1.
+            (ssb, chi2_pvalue(ssb, k as f64 - 1.0))
+        };
+        self.finish_prepared(z, labels, abs_sum, eta2, statistic, p_param)
+    }
+
+    /// Pearson or Spearman correlation with the trait; effect = r (rho).
+    fn prepare_trait(&self, raw: &[f64], z: &mut [f64], scratch: &mut PrepScratch) -> Prepared {
+        let first = raw[0];
+        if raw.iter().all(|&v| v == first) {
+            return Prepared::untested(Status::Constant, f64::NAN);
+        }
+        let source: &[f64] = if self.test == TestKind::Spearman {
+            scratch.ranks.resize(raw.len(), 0.0);
+            mid_ranks(raw, &mut scratch.order, &mut scratch.ranks);
+            &scratch.ranks
+        } else {
+            raw
+        };
+        let abs_sum = standardize(source, z);
+        let n = z.len() as f64;
+        let s: f64 = z.iter().zip(&self.trait_weights).map(|(a, b)| a * b).sum();
+        let r = (s / (n - 1.0)).clamp(-1.0, 1.0);
+        let t = r * ((n - 2.0) / (1.0 - r * r)).sqrt();
+        let p = t_pvalue(t, n - 2.0, self.side);
+        self.finish_prepared(z, &[], abs_sum, r, r, p)
+    }
+
+    /// Paired t or signed-rank on the within-pair differences B minus A
+    /// (raw holds the A samples of all pairs, then their B samples).
+    fn prepare_paired(&self, raw: &[f64], z: &mut [f64], scratch: &mut PrepScratch) -> Prepared {
+        let m = self.sizes.n_a;
+        let (a, b) = raw.split_at(m);
+        scratch.diffs.clear();
+        scratch.diffs.extend(b.iter().zip(a).map(|(y, x)| y - x));
+        let d = &scratch.diffs;
+        let mean = d.iter().sum::<f64>() / m as f64;
+        if d.iter().all(|&v| v == 0.0) {
+            return Prepared::untested(Status::Constant, 0.0);
+        }
+        let mf = m as f64;
+        let (statistic, p_param, weights): (f64, f64, &[f64]) = if self.test == TestKind::PairedT {
+            let var = d.iter().map(|v| (v - mean) * (v - mean)).sum::<f64>() / (mf - 1.0);
+            if var == 0.0 {
+                return Prepared::untested(Status::NoWithinVariance, mean);
+            }
+            let t = mean / (var / mf).sqrt();
+            (t, t_pvalue(t, mf - 1.0, self.side), d)
+        } else {
+            // Wilcoxon signed-rank: zero differences dropped, mid-ranks of |d|.
+            scratch.magnitudes.clear();
+            scratch
+                .magnitudes
+                .extend(d.iter().filter(|v| **v != 0.0).map(|v| v.abs()));
+            let nz = scratch.magnitudes.len();
+            scratch.ranks.resize(nz, 0.0);
+            let tie_sum = mid_ranks(&scratch.magnitudes, &mut scratch.order, &mut scratch.ranks);
+            scratch.signed.clear();
+            let mut k = 0;
+            let mut w_plus = 0.0;
+            for &v in d.iter() {
+                if v == 0.0 {
+                    scratch.signed.push(0.0);
+                } else {
+                    let r = scratch.ranks[k];
+                    k += 1;
+                    if v > 0.0 {
+                        w_plus += r;
+                    }
+                    scratch.signed.push(r * v.signum());
+                }
+            }
+            let nzf = nz as f64;
+            let mu = nzf * (nzf + 1.0) / 4.0;
+            let sd = (nzf * (nzf + 1.0) * (2.0 * nzf + 1.0) / 24.0 - tie_sum / 48.0).sqrt();
+            let zscore = (w_plus - mu) / sd;
+            (w_plus, normal_pvalue(zscore, self.side), &scratch.signed)
+        };
+        // Scale only (sign flips must keep zero at zero): sum of squares n - 1.
+        let ss: f64 = weights.iter().map(|v| v * v).sum();
+        let scale = (ss / (mf - 1.0)).sqrt();
+        let mut abs_sum = 0.0;
+        for (zi, &v) in z.iter_mut().zip(weights) {
+            *zi = v / scale;
+            abs_sum += zi.abs();
+        }
+        self.finish_prepared(z, &[], abs_sum, mean, statistic, p_param)
     }
 }
 
 fn no_within_variance(raw: &[f64], labels: &[u8]) -> bool {
-    let mut first: [Option<f64>; 2] = [None, None];
+    let mut first: [Option<f64>; MAX_GROUPS] = [None; MAX_GROUPS];
     for (&v, &l) in raw.iter().zip(labels) {
         match first[l as usize] {
             None => first[l as usize] = Some(v),

@@ -16,11 +16,7 @@ fn sleep_prepared(test: TestKind, side: Side) -> prepare::Prepared {
     // published sign, so put drug A in group B.
     let raw: Vec<f64> = SLEEP_B.iter().chain(SLEEP_A.iter()).copied().collect();
     let labels: Vec<u8> = (0..20).map(|i| u8::from(i >= 10)).collect();
-    let spec = TestSpec {
-        test,
-        side,
-        sizes: Sizes { n_a: 10, n_b: 10 },
-    };
+    let spec = TestSpec::two_group(test, side, Sizes { n_a: 10, n_b: 10 });
     let mut z = vec![0.0; 20];
     spec.prepare(&raw, &labels, &mut z, &mut PrepScratch::default())
 }

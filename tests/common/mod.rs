@@ -58,7 +58,13 @@ pub fn scan_rows(rows: &[Vec<f64>], labels: &[u8], options: &ScanOptions) -> Sca
     let ids: Vec<String> = (0..rows.len()).map(|i| format!("f{i:05}")).collect();
     let values: Vec<f64> = rows.iter().flatten().copied().collect();
     let source = MemorySource::new(ids, d.samples.clone(), values).unwrap();
-    run_scan_on(Box::new(source), &d, options, &AtomicBool::new(false)).unwrap()
+    run_scan_on(
+        Box::new(source),
+        &(&d).into(),
+        options,
+        &AtomicBool::new(false),
+    )
+    .unwrap()
 }
 
 /// A TSV results table as columns of text.
