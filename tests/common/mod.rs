@@ -110,3 +110,31 @@ impl Table {
         &self.columns[column]
     }
 }
+
+/// Runs a scan of rows given in sample-sheet order (`sheet_samples`) over
+/// a design read from sheet text; columns are reordered as the design asks.
+pub fn scan_with_sheet(
+    rows: &[Vec<f64>],
+    sheet_text: &str,
+    kind: riffle::stats::DesignKind,
+    columns: &riffle::design::DesignColumns,
+    options: &ScanOptions,
+) -> ScanSummary {
+    use riffle::design::{SampleSheet, StudyDesign};
+    let sheet =
+        SampleSheet::parse(Path::new("sheet.tsv"), sheet_text.as_bytes(), "sample").unwrap();
+    let design = StudyDesign::from_sheet(&sheet, kind, columns).unwrap();
+    let sheet_samples: Vec<&str> = (0..sheet.rows.len()).map(|r| sheet.sample(r)).collect();
+    let order: Vec<usize> = design
+        .samples
+        .iter()
+        .map(|s| sheet_samples.iter().position(|x| x == s).unwrap())
+        .collect();
+    let ids: Vec<String> = (0..rows.len()).map(|i| format!("f{i:05}")).collect();
+    let values: Vec<f64> = rows
+        .iter()
+        .flat_map(|row| order.iter().map(|&k| row[k]).collect::<Vec<_>>())
+        .collect();
+    let source = MemorySource::new(ids, design.samples.clone(), values).unwrap();
+    run_scan_on(Box::new(source), &design, options, &AtomicBool::new(false)).unwrap()
+}

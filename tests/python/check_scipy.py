@@ -96,6 +96,111 @@ def scipy_param_p(test, side, b, a):
                               method="asymptotic").pvalue
 
 
+def write_matrix(folder, name, rows, samples):
+    columns = {"feature": pa.array([f"f{k}" for k in range(len(rows))])}
+    for i, s in enumerate(samples):
+        columns[s] = pa.array([float(r[i]) for r in rows], type=pa.float64())
+    table = pa.table(columns)
+    matrix = folder / name
+    with ipc.new_file(str(matrix), table.schema) as writer:
+        writer.write_table(table)
+    return matrix
+
+
+def scan(matrix, sheet, out, args):
+    subprocess.run([RIFFLE, "scan", "--matrix", str(matrix), "--samples", str(sheet), "--out", str(out),
+                    "--format", "tsv", "--quiet", "--seed", "5"] + args, check=True)
+    with open(out / "results.tsv", newline="") as f:
+        return list(csv.DictReader(f, delimiter="\t"))
+
+
+def check_designs(folder):
+    """p_param of k-group, correlation and paired tests against scipy; exact
+    sign-flip p_perm against scipy.stats.permutation_test."""
+    rng = np.random.default_rng(99)
+    failures = 0
+    # k groups: 4 + 4 + 5 samples.
+    classes = [0] * 4 + [1] * 4 + [2] * 5
+    samples = [f"k{i}" for i in range(len(classes))]
+    rows = [rng.normal(size=len(classes)) + 0.5 * k * np.array(classes) for k in range(6)]
+    rows.append(np.round(rng.normal(size=len(classes))))
+    matrix = write_matrix(folder, "k.arrow", rows, samples)
+    sheet = folder / "k.tsv"
+    sheet.write_text("sample\tdose\n" + "".join(f"{s}\td{c}\n" for s, c in zip(samples, classes)))
+    for test, ref in [("anova", lambda *g: stats.f_oneway(*g).pvalue), ("kruskal", lambda *g: stats.kruskal(*g).pvalue)]:
+        res = scan(matrix, sheet, folder / f"out-{test}", ["--test", test, "--group", "dose", "--perms", "200"])
+        worst = max(abs(float(r["p_param"]) - ref(*[row[np.array(classes) == g] for g in range(3)]))
+                    for r, row in zip(res, rows))
+        ok = worst <= 1e-10
+        failures += not ok
+        print(f"{'ok ' if ok else 'BAD'} {test:11} max|p_param - scipy| = {worst:.2e}")
+    # Correlation with a trait: 12 samples.
+    trait = rng.normal(size=12)
+    samples = [f"t{i}" for i in range(12)]
+    rows = [rng.normal(size=12) + 0.4 * k * trait for k in range(6)]
+    matrix = write_matrix(folder, "t.arrow", rows, samples)
+    sheet = folder / "t.tsv"
+    sheet.write_text("sample\tage\n" + "".join(f"{s}\t{v!r}\n" for s, v in zip(samples, trait.tolist())))
+    for test, ref in [("pearson", stats.pearsonr), ("spearman", stats.spearmanr)]:
+        for side, alt in [("both", "two-sided"), ("greater", "greater"), ("less", "less")]:
+            res = scan(matrix, sheet, folder / f"out-{test}-{side}",
+                       ["--test", test, "--trait", "age", "--side", side, "--perms", "200"])
+            worst = max(max(abs(float(r["p_param"]) - ref(row, trait, alternative=alt).pvalue),
+                            abs(float(r["statistic"]) - ref(row, trait).statistic))
+                        for r, row in zip(res, rows))
+            ok = worst <= 1e-10
+            failures += not ok
+            print(f"{'ok ' if ok else 'BAD'} {test:11} {side:7} max|p_param, r - scipy| = {worst:.2e}")
+    # Pairs: 9 pairs (512 sign flips, all enumerated).
+    m = 9
+    samples = [f"pre{i}" for i in range(m)] + [f"post{i}" for i in range(m)]
+    rows = []
+    for k in range(6):
+        base = rng.normal(size=m)
+        rows.append(np.r_[base, base + rng.normal(size=m) * 0.7 + 0.3 * k])
+    rows.append(np.r_[np.arange(m, dtype=float), np.arange(m, dtype=float) + np.array([1, -1, 2, 0, 1, 3, -2, 1, 1.0])])
+    matrix = write_matrix(folder, "p.arrow", rows, samples)
+    sheet = folder / "p.tsv"
+    sheet.write_text("sample\ttime\tsubject\n" + "".join(
+        f"{s}\t{'pre' if i < m else 'post'}\tsubj{i % m}\n" for i, s in enumerate(samples)))
+    for test in ["paired-t", "signed-rank"]:
+        for side, alt in [("both", "two-sided"), ("greater", "greater"), ("less", "less")]:
+            res = scan(matrix, sheet, folder / f"out-{test}-{side}",
+                       ["--test", test, "--group", "time", "--levels", "pre,post", "--pair", "subject",
+                        "--side", side, "--perms", "1000"])
+            worst_param = worst_perm = 0.0
+            for r, row in zip(res, rows):
+                pre, post = row[:m], row[m:]
+                if test == "paired-t":
+                    p_ref = stats.ttest_rel(post, pre, alternative=alt).pvalue
+                    stat = lambda x, y, axis: stats.ttest_rel(x, y, axis=axis).statistic
+                else:
+                    p_ref = stats.wilcoxon(post - pre, alternative=alt, method="approx").pvalue
+                    # Signed-rank sum W+ - W- (sign flips keep the ranks).
+                    def stat(x, y, axis):
+                        d = x - y
+                        # Zero differences are dropped before ranking (Wilcoxon's
+                        # convention, scipy's default zero_method): they hold the
+                        # lowest ranks of |d|, so shift the others down.
+                        zeros = np.sum(d == 0, axis=axis, keepdims=True)
+                        ranks = np.where(d == 0, 0, stats.rankdata(np.abs(d), axis=axis) - zeros)
+                        return np.sum(np.sign(d) * ranks, axis=axis)
+                if side == "both":
+                    statistic, alternative = (lambda x, y, axis, s=stat: np.abs(s(x, y, axis))), "greater"
+                else:
+                    statistic, alternative = stat, alt
+                p_perm_ref = stats.permutation_test((post, pre), statistic, permutation_type="samples",
+                                                    n_resamples=np.inf, alternative=alternative,
+                                                    vectorized=True).pvalue
+                worst_param = max(worst_param, abs(float(r["p_param"]) - p_ref))
+                worst_perm = max(worst_perm, abs(float(r["p_perm"]) - p_perm_ref))
+            ok = worst_param <= 1e-10 and worst_perm <= 1e-12
+            failures += not ok
+            print(f"{'ok ' if ok else 'BAD'} {test:11} {side:7} max|p_param - scipy| = {worst_param:.2e}"
+                  f"  max|p_perm - scipy| = {worst_perm:.2e}")
+    return failures
+
+
 def main():
     rows = features()
     failures = 0
@@ -118,7 +223,8 @@ def main():
                 failures += not ok
                 print(f"{'ok ' if ok else 'BAD'} {test:9} {side:7} max|p_perm - scipy| = {worst_perm:.2e}"
                       f"  max|p_param - scipy| = {worst_param:.2e}")
-    print(f"scipy cross-check: {checked} feature-tests compared, {failures} configurations failed")
+        failures += check_designs(folder)
+    print(f"scipy cross-check: {checked} two-group feature-tests compared; {failures} configurations failed")
     return 1 if failures else 0
 
 
