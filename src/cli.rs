@@ -60,6 +60,11 @@ pub struct ScanArgs {
     /// only exchange samples within a stratum.
     #[arg(long)]
     pub strata: Option<String>,
+    /// Sample-sheet columns to adjust for (numeric as is, text one-hot with
+    /// the first level as reference; an intercept is always in): the test
+    /// becomes a linear model's t, permuted by Freedman–Lane.
+    #[arg(long, value_delimiter = ',')]
+    pub covariates: Vec<String>,
     #[arg(long, value_enum, default_value_t = TestKind::Welch)]
     pub test: TestKind,
     #[arg(long, value_enum, default_value_t = Side::Both)]
@@ -162,6 +167,7 @@ impl ScanArgs {
             trait_column: self.trait_column.clone(),
             pair: self.pair.clone(),
             strata: self.strata.clone(),
+            covariates: self.covariates.clone(),
             test: self.test,
             side: self.side,
             perms: self.perms,

@@ -315,6 +315,8 @@ impl Kernel {
                     let wide = &mut tiles.sums[i * ct * r..(i + 1) * ct * r];
                     if squares {
                         self.welch_tile(wide, &tiles.squares[i * ct..(i + 1) * ct]);
+                    } else if self.spec.model.is_some() {
+                        self.model_tile(wide, ct);
                     } else if r > 1 {
                         self.between_groups_tile(wide, ct);
                     } else {
@@ -349,12 +351,36 @@ impl Kernel {
         }
     }
 
+    /// Compacts `cols` groups of sums against the model basis into oriented
+    /// t statistics, in place; ill-conditioned ones (residual sum of squares
+    /// lost to cancellation) become NaN so that they are recomputed in f64.
+    fn model_tile(&self, wide: &mut [f32], cols: usize) {
+        let r = self.spec.width();
+        let n = self.units() as f32;
+        let df = self.spec.model.as_ref().map_or(1.0, |m| m.df) as f32;
+        let side = self.spec.side;
+        for j in 0..cols {
+            let sums = &wide[j * r..(j + 1) * r];
+            let explained: f32 = sums.iter().map(|s| s * s).sum();
+            let rss = (n - 1.0) - explained;
+            let t = if rss > 1e-2 * (n - 1.0) {
+                sums[0] / (rss / df).sqrt()
+            } else {
+                f32::NAN
+            };
+            wide[j] = side.orient32(t);
+        }
+    }
+
     /// Largest possible |f32 - f64| of a kernel statistic for a feature:
     /// each weighted sum errs by at most delta (rounding of z and of the
     /// weights to f32 plus n accumulations, over sum |z w|).
     fn error_band(&self, kernel_obs: f64, abs_sum: f64) -> f64 {
         let n = self.units() as f64;
         let delta = 2.0 * (n + 2.0) * F32_UNIT * abs_sum + 1e-12;
+        if self.spec.model.is_some() {
+            return 1e-3 * (1.0 + kernel_obs.abs());
+        }
         match self.spec.test {
             TestKind::Welch => 1e-3 * (1.0 + kernel_obs.abs()),
             TestKind::Anova | TestKind::Kruskal => {
@@ -388,6 +414,7 @@ impl Kernel {
     /// An f32 value below this cannot belong to an f64 statistic above `max`.
     fn max_floor(&self, max: f64, chunk_band: f64) -> f32 {
         let relative = match self.spec.test {
+            _ if self.spec.model.is_some() => 1e-3 * (1.0 + max.abs()),
             TestKind::Welch => 1e-3 * (1.0 + max.abs()),
             _ => 0.0,
         };
@@ -659,7 +686,7 @@ struct RowsView<'a> {
 fn assignment<'a>(spec: &TestSpec, relabel: &'a Relabelings, b: usize) -> Assignment<'a> {
     if relabel.sign_flips {
         Assignment::Flips(relabel.row(b))
-    } else if spec.test.design() == DesignKind::Trait {
+    } else if spec.test.design() == DesignKind::Trait || spec.model.is_some() {
         Assignment::Sources(relabel.source_row(b))
     } else {
         Assignment::Classes(relabel.row(b))

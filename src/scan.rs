@@ -37,6 +37,8 @@ pub struct ScanOptions {
     pub pair: Option<String>,
     /// Strata column: relabelings stay within strata.
     pub strata: Option<String>,
+    /// Covariate columns: a linear model per feature, Freedman–Lane.
+    pub covariates: Vec<String>,
     pub test: TestKind,
     pub side: Side,
     pub perms: usize,
@@ -78,6 +80,7 @@ impl ScanOptions {
             trait_column: None,
             pair: None,
             strata: None,
+            covariates: Vec::new(),
             test: TestKind::Welch,
             side: Side::Both,
             perms: 10_000,
@@ -137,6 +140,7 @@ pub fn run_scan(options: &ScanOptions, stop: &AtomicBool) -> Result<ScanSummary>
         trait_column: options.trait_column.clone(),
         pair: options.pair.clone(),
         strata: options.strata.clone(),
+        covariates: options.covariates.clone(),
     };
     check_design_options(options)?;
     let design = StudyDesign::from_sheet(&sheet, options.test.design(), &columns)?;
@@ -268,6 +272,14 @@ pub fn run_scan_on(
 /// Options that name design columns the chosen test does not use.
 fn check_design_options(options: &ScanOptions) -> Result<()> {
     let test = options.test.name();
+    if !options.covariates.is_empty()
+        && !matches!(options.test, TestKind::Student | TestKind::Pearson)
+    {
+        return Err(RiffleError::options(format!(
+            "--covariates makes the test a linear model's t: use --test student (two groups) or \
+             --test pearson (a trait), not --test {test}"
+        )));
+    }
     match options.test.design() {
         DesignKind::Trait => {
             if options.pair.is_some() {
@@ -323,6 +335,7 @@ fn test_spec(options: &ScanOptions, design: &StudyDesign) -> Result<TestSpec> {
                 sizes: Sizes { n_a: n, n_b: 0 },
                 group_sizes: design.group_sizes.clone(),
                 trait_weights: Vec::new(),
+                model: None,
             }
         }
         DesignKind::Groups => {
@@ -339,14 +352,16 @@ fn test_spec(options: &ScanOptions, design: &StudyDesign) -> Result<TestSpec> {
                     ),
                 ));
             }
-            TestSpec::two_group(
+            let mut spec = TestSpec::two_group(
                 test,
                 options.side,
                 Sizes {
                     n_a: design.group_sizes[0],
                     n_b: design.group_sizes[1],
                 },
-            )
+            );
+            spec.model = design.model.clone();
+            spec
         }
         DesignKind::Trait => TestSpec {
             test,
@@ -354,6 +369,7 @@ fn test_spec(options: &ScanOptions, design: &StudyDesign) -> Result<TestSpec> {
             sizes: Sizes { n_a: n, n_b: 0 },
             group_sizes: Vec::new(),
             trait_weights: design.trait_weights(test == TestKind::Spearman),
+            model: design.model.clone(),
         },
         DesignKind::Paired => TestSpec {
             test,
@@ -361,6 +377,7 @@ fn test_spec(options: &ScanOptions, design: &StudyDesign) -> Result<TestSpec> {
             sizes: Sizes { n_a: n, n_b: n },
             group_sizes: Vec::new(),
             trait_weights: Vec::new(),
+            model: None,
         },
     })
 }

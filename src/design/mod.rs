@@ -1,6 +1,7 @@
 //! Design stage: which samples take part, their labels, and the shared
 //! relabelings drawn from the seed.
 
+pub mod model;
 pub mod relabel;
 pub mod sheet;
 pub mod study;

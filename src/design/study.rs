@@ -3,6 +3,7 @@
 
 use std::collections::BTreeMap;
 
+use super::model::LinearModel;
 use super::relabel::Scheme;
 use super::{SampleSheet, TwoGroupDesign};
 use crate::error::{Result, RiffleError};
@@ -17,6 +18,9 @@ pub struct DesignColumns {
     pub trait_column: Option<String>,
     pub pair: Option<String>,
     pub strata: Option<String>,
+    /// Covariates: the test becomes a linear model per feature, permuted
+    /// by Freedman–Lane.
+    pub covariates: Vec<String>,
 }
 
 #[derive(Debug, Clone, serde::Serialize)]
@@ -39,6 +43,9 @@ pub struct StudyDesign {
     pub strata: Option<Vec<u32>>,
     /// Paired: pair ids in unit order.
     pub pairs: Vec<String>,
+    /// With covariates: the linear model of every feature.
+    #[serde(skip)]
+    pub model: Option<LinearModel>,
 }
 
 impl From<&TwoGroupDesign> for StudyDesign {
@@ -57,6 +64,7 @@ impl From<&TwoGroupDesign> for StudyDesign {
             trait_values: Vec::new(),
             strata: None,
             pairs: Vec::new(),
+            model: None,
         }
     }
 }
@@ -73,6 +81,13 @@ impl StudyDesign {
 
     /// How units may be relabelled.
     pub fn scheme<'a>(&'a self, trait_classes: &'a [u8]) -> Scheme<'a> {
+        if self.model.is_some() {
+            // Freedman–Lane permutes residuals: every unit is distinct.
+            return Scheme::Permute {
+                classes: trait_classes,
+                strata: self.strata.as_deref(),
+            };
+        }
         match self.kind {
             DesignKind::Paired => Scheme::SignFlip {
                 n: self.pairs.len(),
@@ -91,6 +106,9 @@ impl StudyDesign {
     /// Trait values as classes (equal values share one, up to 255), so
     /// that exhaustive listing counts distinct arrangements.
     pub fn trait_classes(&self) -> Vec<u8> {
+        if self.model.is_some() {
+            return (0..self.units()).map(|i| i.min(255) as u8).collect();
+        }
         let mut sorted: Vec<f64> = self.trait_values.clone();
         sorted.sort_by(|a, b| a.total_cmp(b));
         sorted.dedup();
@@ -133,6 +151,9 @@ impl StudyDesign {
         };
         if let Some(col) = strata_col {
             design.strata = Some(design.stratum_ids(sheet, col)?);
+        }
+        if !columns.covariates.is_empty() {
+            design.model = Some(design.linear_model(sheet, columns)?);
         }
         design.columns = columns.clone();
         Ok(design)
@@ -233,6 +254,7 @@ impl StudyDesign {
             trait_values: Vec::new(),
             strata: None,
             pairs: Vec::new(),
+            model: None,
         })
     }
 
@@ -292,6 +314,7 @@ impl StudyDesign {
             trait_values: values,
             strata: None,
             pairs: Vec::new(),
+            model: None,
         })
     }
 
@@ -381,7 +404,34 @@ impl StudyDesign {
             trait_values: Vec::new(),
             strata: None,
             pairs: order,
+            model: None,
         })
+    }
+
+    /// The per-feature linear model with the covariates; the effect of
+    /// interest is group B against A, or the trait.
+    fn linear_model(&self, sheet: &SampleSheet, columns: &DesignColumns) -> Result<LinearModel> {
+        let (x, name): (Vec<f64>, String) = match self.kind {
+            DesignKind::Groups if self.levels.len() == 2 => (
+                self.classes.iter().map(|&c| f64::from(c)).collect(),
+                columns.group.clone().unwrap_or_default(),
+            ),
+            DesignKind::Trait => (
+                self.trait_values.clone(),
+                columns.trait_column.clone().unwrap_or_default(),
+            ),
+            _ => {
+                return Err(RiffleError::options(
+                    "--covariates works with two groups (--test student) or a trait \
+                     (--test pearson); k-group and paired models are not offered yet",
+                ))
+            }
+        };
+        let row_of: BTreeMap<&str, usize> = (0..sheet.rows.len())
+            .map(|r| (sheet.sample(r), r))
+            .collect();
+        let rows: Vec<usize> = self.samples.iter().map(|s| row_of[s.as_str()]).collect();
+        LinearModel::build(sheet, &columns.covariates, &rows, &x, &name)
     }
 
     /// Stratum of each unit, by the strata column (paired: both samples of

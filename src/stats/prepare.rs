@@ -2,6 +2,8 @@
 //! first for rank tests), and compute its observed statistic and
 //! model-based p-value.
 
+use crate::design::model::LinearModel;
+
 use super::{
     chi2_pvalue, f_pvalue, mid_ranks, normal_pvalue, rank_sum_pvalue, student_t, t_pvalue, welch_t,
     DesignKind, GroupSums, Side, Sizes, TestKind,
@@ -54,6 +56,9 @@ pub struct TestSpec {
     /// Correlation tests: the standardized trait (Pearson) or its
     /// standardized mid-ranks (Spearman), per unit.
     pub trait_weights: Vec<f64>,
+    /// With covariates: the linear model (Freedman–Lane permutation of
+    /// residuals; kernel sums are against the permuted model basis).
+    pub model: Option<LinearModel>,
 }
 
 /// Which relabelling a kernel statistic is computed for.
@@ -117,11 +122,15 @@ impl TestSpec {
             sizes,
             group_sizes: vec![sizes.n_a, sizes.n_b],
             trait_weights: Vec::new(),
+            model: None,
         }
     }
 
     /// Units the kernel sees per feature: samples, or pairs.
     pub fn units(&self) -> usize {
+        if let Some(model) = &self.model {
+            return model.effect_direction.len();
+        }
         match self.test.design() {
             DesignKind::Paired => self.sizes.n_a,
             DesignKind::Groups => self.group_sizes.iter().sum(),
@@ -139,6 +148,9 @@ impl TestSpec {
 
     /// Weight columns per relabelling in the kernel's GEMM.
     pub fn width(&self) -> usize {
+        if let Some(model) = &self.model {
+            return model.basis_len();
+        }
         match self.test.design() {
             DesignKind::Groups if self.test.is_k_group() => self.group_sizes.len() - 1,
             _ => 1,
@@ -150,6 +162,26 @@ impl TestSpec {
         let r = self.width();
         let n = self.units();
         out[..n * r].fill(0.0);
+        if let Some(model) = &self.model {
+            // Unit j's residual moves to the unit that takes it: weights are
+            // the model basis at the inverse permutation.
+            let columns = std::iter::once(&model.effect_direction).chain(&model.nuisance_basis);
+            for (c, basis) in columns.enumerate() {
+                match assignment {
+                    Assignment::Sources(src) => {
+                        for (i, &s) in src.iter().enumerate() {
+                            out[s as usize * r + c] = basis[i];
+                        }
+                    }
+                    _ => {
+                        for (j, &v) in basis.iter().enumerate() {
+                            out[j * r + c] = v;
+                        }
+                    }
+                }
+            }
+            return;
+        }
         match assignment {
             Assignment::Classes(classes) | Assignment::Observed(classes)
                 if self.test.design() == DesignKind::Groups =>
@@ -181,6 +213,20 @@ impl TestSpec {
     /// Kernel statistic of a standardized row under an assignment, in f64.
     pub fn kernel_stat_with(&self, z: &[f64], assignment: Assignment<'_>) -> f64 {
         let mut sums = [0.0f64; MAX_GROUPS];
+        if let Some(model) = &self.model {
+            let columns = std::iter::once(&model.effect_direction).chain(&model.nuisance_basis);
+            for (c, basis) in columns.enumerate() {
+                sums[c] = match assignment {
+                    Assignment::Sources(src) => src
+                        .iter()
+                        .enumerate()
+                        .map(|(i, &s)| basis[i] * z[s as usize])
+                        .sum(),
+                    _ => basis.iter().zip(z).map(|(a, b)| a * b).sum(),
+                };
+            }
+            return self.finish(&sums[..self.width()], 0.0);
+        }
         let mut q1 = 0.0;
         match assignment {
             Assignment::Classes(classes) | Assignment::Observed(classes)
@@ -226,6 +272,9 @@ impl TestSpec {
     /// group-B sum of squares, Welch only).
     #[inline]
     pub fn finish(&self, sums: &[f64], q1: f64) -> f64 {
+        if let Some(model) = &self.model {
+            return self.side.orient(model_t(sums, self.units(), model.df));
+        }
         match self.test {
             TestKind::Welch => self
                 .side
@@ -262,6 +311,9 @@ impl TestSpec {
         }
         if raw.iter().any(|v| v.is_infinite()) {
             return Prepared::untested(Status::NonFinite, f64::NAN);
+        }
+        if let Some(model) = &self.model {
+            return self.prepare_model(model, raw, labels, z);
         }
         match self.test.design() {
             DesignKind::Groups if self.test.is_k_group() => {
@@ -354,6 +406,55 @@ impl TestSpec {
             }
         };
         self.finish_prepared(z, labels, abs_sum, effect, statistic, p_param)
+    }
+
+    /// The model's t for the effect of interest after the covariates, on
+    /// residuals scaled to sum of squares n - 1; effect = the coefficient
+    /// (adjusted difference B minus A, or slope per trait unit).
+    fn prepare_model(
+        &self,
+        model: &LinearModel,
+        raw: &[f64],
+        labels: &[u8],
+        z: &mut [f64],
+    ) -> Prepared {
+        let first = raw[0];
+        if raw.iter().all(|&v| v == first) {
+            return Prepared::untested(Status::Constant, f64::NAN);
+        }
+        let coefficient = model
+            .effect_direction
+            .iter()
+            .zip(raw)
+            .map(|(a, y)| a * y)
+            .sum::<f64>()
+            / model.effect_norm;
+        model.residualize(raw, z);
+        let n = z.len() as f64;
+        let ss: f64 = z.iter().map(|v| v * v).sum();
+        let raw_ss: f64 = raw.iter().map(|v| v * v).sum();
+        if ss <= 1e-24 * raw_ss {
+            return Prepared::untested(Status::NoWithinVariance, coefficient);
+        }
+        let scale = (ss / (n - 1.0)).sqrt();
+        let mut abs_sum = 0.0;
+        for v in z.iter_mut() {
+            *v /= scale;
+            abs_sum += v.abs();
+        }
+        let mut sums = vec![0.0; self.width()];
+        sums[0] = model
+            .effect_direction
+            .iter()
+            .zip(z.iter())
+            .map(|(a, b)| a * b)
+            .sum();
+        let t = model_t(&sums, z.len(), model.df);
+        if !t.is_finite() {
+            return Prepared::untested(Status::NoWithinVariance, coefficient);
+        }
+        let p = t_pvalue(t, model.df, self.side);
+        self.finish_prepared(z, labels, abs_sum, coefficient, t, p)
     }
 
     /// One-way F or Kruskal–Wallis H; effect = eta squared (share of the
@@ -482,6 +583,15 @@ impl TestSpec {
         }
         self.finish_prepared(z, &[], abs_sum, mean, statistic, p_param)
     }
+}
+
+/// t of the effect from the sums against the model basis (effect direction
+/// first) of residuals whose sum of squares is n - 1.
+#[inline]
+pub fn model_t(sums: &[f64], n: usize, df: f64) -> f64 {
+    let explained: f64 = sums.iter().map(|s| s * s).sum();
+    let rss = (n as f64 - 1.0) - explained;
+    sums[0] / (rss.max(0.0) / df).sqrt()
 }
 
 fn no_within_variance(raw: &[f64], labels: &[u8]) -> bool {

@@ -198,6 +198,32 @@ def check_designs(folder):
             failures += not ok
             print(f"{'ok ' if ok else 'BAD'} {test:11} {side:7} max|p_param - scipy| = {worst_param:.2e}"
                   f"  max|p_perm - scipy| = {worst_perm:.2e}")
+    # Covariates: OLS t of the group after age and site (statsmodels).
+    import statsmodels.api as sm
+    n = 16
+    group = np.array([0, 1] * 8, dtype=float)
+    age = rng.normal(50, 10, size=n) + 5 * group
+    site = np.array(["north", "south", "east", "north"] * 4)
+    samples = [f"c{i}" for i in range(n)]
+    rows = [2 + 0.03 * age + rng.normal(size=n) + 0.4 * k * group for k in range(6)]
+    matrix = write_matrix(folder, "c.arrow", rows, samples)
+    sheet = folder / "c.tsv"
+    sheet.write_text("sample\tarm\tage\tsite\n" + "".join(
+        f"{s}\t{'treated' if g else 'control'}\t{float(a)!r}\t{st}\n"
+        for s, g, a, st in zip(samples, group.tolist(), age.tolist(), site)))
+    design = np.column_stack([group, np.ones(n), age,
+                              (site == "north").astype(float), (site == "south").astype(float)])
+    res = scan(matrix, sheet, folder / "out-ols", ["--test", "student", "--group", "arm", "--levels",
+                                                    "control,treated", "--covariates", "age,site",
+                                                    "--perms", "200"])
+    worst = 0.0
+    for r, y in zip(res, rows):
+        fit = sm.OLS(y, design).fit()
+        worst = max(worst, abs(float(r["statistic"]) - fit.tvalues[0]), abs(float(r["p_param"]) - fit.pvalues[0]),
+                    abs(float(r["effect"]) - fit.params[0]))
+    ok = worst <= 1e-9
+    failures += not ok
+    print(f"{'ok ' if ok else 'BAD'} covariates  max|t, p, effect - statsmodels OLS| = {worst:.2e}")
     return failures
 
 

@@ -1,0 +1,172 @@
+//! Linear models for tests with covariates: the nuisance design (intercept
+//! plus covariates from the sample sheet, text ones one-hot encoded against
+//! a reference level) and the quantities Freedman–Lane permutation needs
+//! (Winkler, Ridgway, Webster, Smith & Nichols 2014, "Permutation inference
+//! for the general linear model", NeuroImage 92).
+
+use crate::design::SampleSheet;
+use crate::error::{Result, RiffleError};
+
+/// What the kernel needs of a model y = x b + Z g + e, for one effect of
+/// interest x.
+#[derive(Debug, Clone)]
+pub struct LinearModel {
+    /// Orthonormal basis of span(Z) (intercept and covariates), units long.
+    pub nuisance_basis: Vec<Vec<f64>>,
+    /// x residualized on Z, scaled to unit length: the last basis vector of
+    /// span([Z, x]) and, divided by `effect_norm`, the row of
+    /// (M'M)^-1 M' that gives x's coefficient (Frisch–Waugh–Lovell).
+    pub effect_direction: Vec<f64>,
+    /// |x residualized on Z|.
+    pub effect_norm: f64,
+    /// Residual degrees of freedom, n - rank(M).
+    pub df: f64,
+    /// Names of the nuisance columns (for the run record).
+    pub terms: Vec<String>,
+}
+
+impl LinearModel {
+    /// Columns of M (as basis): nuisance first, then the effect direction.
+    pub fn basis_len(&self) -> usize {
+        self.nuisance_basis.len() + 1
+    }
+
+    /// Builds the model from the effect column `x` (units long) and the
+    /// covariate columns of the sheet, for the sheet rows `rows` (one per
+    /// unit, in unit order).
+    pub fn build(
+        sheet: &SampleSheet,
+        covariates: &[String],
+        rows: &[usize],
+        x: &[f64],
+        effect_name: &str,
+    ) -> Result<Self> {
+        let n = rows.len();
+        let mut columns: Vec<(String, Vec<f64>)> = vec![("intercept".into(), vec![1.0; n])];
+        for name in covariates {
+            let col = sheet.column_index(name, "--covariates")?;
+            let cells: Vec<&str> = rows.iter().map(|&r| sheet.rows[r][col].as_str()).collect();
+            if let Some(i) = cells.iter().position(|c| c.is_empty()) {
+                return Err(RiffleError::bad_input(
+                    &sheet.path,
+                    format!("row {}, column '{name}'", sheet.line_of(rows[i])),
+                    format!(
+                        "sample '{}' has no value for covariate '{name}'",
+                        sheet.sample(rows[i])
+                    ),
+                ));
+            }
+            let numeric: Option<Vec<f64>> = cells.iter().map(|c| c.parse::<f64>().ok()).collect();
+            match numeric {
+                Some(values) if values.iter().all(|v| v.is_finite()) => {
+                    columns.push((name.clone(), values))
+                }
+                _ => {
+                    let mut levels: Vec<&str> = cells.clone();
+                    levels.sort_unstable();
+                    levels.dedup();
+                    // The first level (sorted) is the reference.
+                    for level in levels.iter().skip(1) {
+                        columns.push((
+                            format!("{name}={level}"),
+                            cells
+                                .iter()
+                                .map(|c| f64::from(u8::from(c == level)))
+                                .collect(),
+                        ));
+                    }
+                    if levels.len() == 1 {
+                        columns.push((name.clone(), vec![0.0; n]));
+                    }
+                }
+            }
+        }
+        let mut basis: Vec<Vec<f64>> = Vec::new();
+        let mut terms = Vec::new();
+        for (name, column) in &columns {
+            match orthogonal_remainder(column, &basis) {
+                Some(q) => {
+                    basis.push(q);
+                    terms.push(name.clone());
+                }
+                None => {
+                    return Err(RiffleError::bad_input(
+                        &sheet.path,
+                        format!("column '{}'", name.split('=').next().unwrap_or(name)),
+                        if name == "intercept" {
+                            "no samples".to_string()
+                        } else {
+                            format!(
+                                "covariate '{name}' is constant or a combination of the intercept and \
+                                 the covariates before it; remove it"
+                            )
+                        },
+                    ));
+                }
+            }
+        }
+        let mut residual = x.to_vec();
+        for q in &basis {
+            let c: f64 = q.iter().zip(&residual).map(|(a, b)| a * b).sum();
+            residual.iter_mut().zip(q).for_each(|(r, qi)| *r -= c * qi);
+        }
+        let norm = residual.iter().map(|v| v * v).sum::<f64>().sqrt();
+        let x_norm = x.iter().map(|v| v * v).sum::<f64>().sqrt();
+        if norm <= 1e-10 * x_norm.max(1e-300) {
+            return Err(RiffleError::bad_input(
+                &sheet.path,
+                format!("column '{effect_name}'"),
+                format!(
+                    "'{effect_name}' is fully explained by the covariates ({}); nothing is left to test",
+                    terms[1..].join(", ")
+                ),
+            ));
+        }
+        let df = n as f64 - basis.len() as f64 - 1.0;
+        if df < 1.0 {
+            return Err(RiffleError::bad_input(
+                &sheet.path,
+                "covariates",
+                format!(
+                    "{} model terms for {n} units leave no residual degrees of freedom",
+                    basis.len() + 1
+                ),
+            ));
+        }
+        Ok(LinearModel {
+            nuisance_basis: basis,
+            effect_direction: residual.iter().map(|v| v / norm).collect(),
+            effect_norm: norm,
+            df,
+            terms,
+        })
+    }
+
+    /// y minus its projection on span(Z).
+    pub fn residualize(&self, y: &[f64], out: &mut [f64]) {
+        out.copy_from_slice(y);
+        for q in &self.nuisance_basis {
+            let c: f64 = q.iter().zip(out.iter()).map(|(a, b)| a * b).sum();
+            out.iter_mut().zip(q).for_each(|(r, qi)| *r -= c * qi);
+        }
+    }
+}
+
+/// `column` minus its projection on an orthonormal `basis`, normalized;
+/// None when nothing independent is left (modified Gram–Schmidt, twice for
+/// stability).
+fn orthogonal_remainder(column: &[f64], basis: &[Vec<f64>]) -> Option<Vec<f64>> {
+    let original = column.iter().map(|v| v * v).sum::<f64>().sqrt();
+    if original == 0.0 {
+        return None;
+    }
+    let mut v = column.to_vec();
+    for _ in 0..2 {
+        for q in basis {
+            let c: f64 = q.iter().zip(&v).map(|(a, b)| a * b).sum();
+            v.iter_mut().zip(q).for_each(|(r, qi)| *r -= c * qi);
+        }
+    }
+    let norm = v.iter().map(|x| x * x).sum::<f64>().sqrt();
+    (norm > 1e-9 * original).then(|| v.iter().map(|x| x / norm).collect())
+}
