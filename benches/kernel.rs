@@ -1,0 +1,112 @@
+//! Kernel benchmark: the machine's own single-precision GEMM on the scan's
+//! shape, against riffle's kernel on the same shape, in one run, so that the
+//! ratio holds even on a noisy machine.
+//!
+//! `cargo bench --bench kernel` (full) or `RIFFLE_BENCH_QUICK=1 cargo bench
+//! --bench kernel` (seconds; CI uses it to check the benchmark still runs).
+//! Environment: RIFFLE_BENCH_FEATURES (default 20000), RIFFLE_BENCH_SAMPLES
+//! (48), RIFFLE_BENCH_PERMS (10000).
+
+use std::sync::Arc;
+use std::time::Instant;
+
+use riffle::design::Relabelings;
+use riffle::kernel::{Kernel, KernelScratch};
+use riffle::stats::prepare::TestSpec;
+use riffle::stats::{Side, Sizes, TestKind};
+
+fn env(name: &str, default: usize) -> usize {
+    std::env::var(name).ok().and_then(|v| v.parse().ok()).unwrap_or(default)
+}
+
+/// Plain f32 GEMM of (rows x n) by (n x cols), tile by tile as the kernel
+/// does (64 x 512 blocks), on `threads` threads splitting the rows.
+fn gemm_rate(rows: usize, n: usize, cols: usize, threads: usize) -> f64 {
+    let a: Vec<f32> = (0..rows * n).map(|i| ((i * 7919) % 1000) as f32 / 1000.0).collect();
+    let b: Vec<f32> = (0..n * cols).map(|i| ((i * 104729) % 2) as f32).collect();
+    let started = Instant::now();
+    std::thread::scope(|scope| {
+        for t in 0..threads {
+            let (a, b) = (&a, &b);
+            scope.spawn(move || {
+                let mut c = vec![0f32; 64 * 512];
+                let mut checksum = 0f32;
+                let lo = rows * t / threads;
+                let hi = rows * (t + 1) / threads;
+                for r0 in (lo..hi).step_by(64) {
+                    let rt = 64.min(hi - r0);
+                    for c0 in (0..cols).step_by(512) {
+                        let ct = 512.min(cols - c0);
+                        unsafe {
+                            matrixmultiply::sgemm(
+                                rt, n, ct, 1.0,
+                                a.as_ptr().add(r0 * n), n as isize, 1,
+                                b.as_ptr().add(c0), cols as isize, 1,
+                                0.0, c.as_mut_ptr(), ct as isize, 1,
+                            );
+                        }
+                        checksum += c[0];
+                    }
+                }
+                std::hint::black_box(checksum);
+            });
+        }
+    });
+    let seconds = started.elapsed().as_secs_f64();
+    rows as f64 * cols as f64 / seconds
+}
+
+fn kernel_rate(test: TestKind, rows: usize, n: usize, perms: usize, threads: usize) -> f64 {
+    let labels: Vec<u8> = (0..n).map(|i| u8::from(i >= n / 2)).collect();
+    let relabel = Relabelings::draw(&labels, perms, 1);
+    let spec = TestSpec::two_group(test, Side::Both, Sizes { n_a: n / 2, n_b: n - n / 2 });
+    let kernel = Arc::new(Kernel::new(spec, labels, relabel));
+    let raw: Vec<f64> = (0..rows * n)
+        .map(|i| ((i as u64).wrapping_mul(0x9E37_79B9_7F4A_7C15) >> 40) as f64 / 16_777_216.0)
+        .collect();
+    let chunk = 2048;
+    let started = Instant::now();
+    std::thread::scope(|scope| {
+        for t in 0..threads {
+            let (kernel, raw) = (kernel.clone(), &raw);
+            scope.spawn(move || {
+                let mut scratch = KernelScratch::default();
+                let chunks = rows.div_ceil(chunk);
+                for c in (t..chunks).step_by(threads) {
+                    let r0 = c * chunk;
+                    let rt = chunk.min(rows - r0);
+                    let out = kernel.run_chunk(&raw[r0 * n..(r0 + rt) * n], rt, true, &mut scratch);
+                    std::hint::black_box(out.features.len());
+                }
+            });
+        }
+    });
+    rows as f64 * perms as f64 / started.elapsed().as_secs_f64()
+}
+
+fn main() {
+    let quick = std::env::var("RIFFLE_BENCH_QUICK").is_ok();
+    let rows = env("RIFFLE_BENCH_FEATURES", if quick { 2000 } else { 20_000 });
+    let n = env("RIFFLE_BENCH_SAMPLES", 48);
+    let perms = env("RIFFLE_BENCH_PERMS", if quick { 1000 } else { 10_000 });
+    println!("kernel benchmark: {rows} features x {n} samples, {perms} relabelings");
+    for threads in [1, 2] {
+        let gemm = gemm_rate(rows, n, perms, threads);
+        println!(
+            "  f32 GEMM ({threads} thread{}): {:.3e} feature-relabelings/s ({:.1} GFLOP/s)",
+            if threads > 1 { "s" } else { "" },
+            gemm,
+            gemm * 2.0 * n as f64 / 1e9
+        );
+        for test in [TestKind::Student, TestKind::Welch] {
+            let rate = kernel_rate(test, rows, n, perms, threads);
+            println!(
+                "  kernel {:8} ({threads} thread{}): {:.3e} feature-relabelings/s = {:.0}% of GEMM",
+                test.name(),
+                if threads > 1 { "s" } else { "" },
+                rate,
+                100.0 * rate / gemm
+            );
+        }
+    }
+}
