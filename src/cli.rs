@@ -33,6 +33,10 @@ pub enum Command {
     Demo(DemoArgs),
     /// Write a synthetic matrix (and its sample sheet) of any size.
     Simulate(crate::simulate::SimulateArgs),
+    /// Convert a text matrix (TSV/CSV, optionally gzipped) to Arrow IPC or Parquet.
+    Import(crate::input::text::ImportArgs),
+    /// Describe a matrix: shape, column types, missing values, summary figures.
+    Inspect(crate::inspect::InspectArgs),
 }
 
 #[derive(Args, Debug)]
@@ -232,6 +236,8 @@ fn dispatch(cli: Cli) -> Result<()> {
         }
         Command::Demo(args) => crate::demo::run_demo(&args.out, args.threads, &STOP),
         Command::Simulate(args) => crate::simulate::run_simulate(&args),
+        Command::Import(args) => crate::input::text::run_import(&args),
+        Command::Inspect(args) => crate::inspect::run_inspect(&args),
     }
 }
 

@@ -14,6 +14,7 @@ pub mod demo;
 pub mod design;
 pub mod error;
 pub mod input;
+pub mod inspect;
 pub mod kernel;
 pub mod maxt;
 pub mod multitest;

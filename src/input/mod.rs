@@ -13,6 +13,7 @@ mod columns;
 mod ipc_file;
 pub mod memory;
 mod parquet_file;
+pub mod text;
 mod writer;
 
 #[cfg(test)]
