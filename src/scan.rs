@@ -144,8 +144,46 @@ pub fn run_scan(options: &ScanOptions, stop: &AtomicBool) -> Result<ScanSummary>
     };
     check_design_options(options)?;
     let design = StudyDesign::from_sheet(&sheet, options.test.design(), &columns)?;
-    let source = input::open_matrix(&options.matrix, &options.id_column, &design.samples)?;
+    let matrix = import_if_text(options, stop)?;
+    let source = input::open_matrix(&matrix, &options.id_column, &design.samples)?;
     run_scan_on(source, &design, options, stop)
+}
+
+/// Text matrices (TSV/CSV, gzipped or not, one row per feature) are
+/// imported to an Arrow file in the output folder first.
+fn import_if_text(options: &ScanOptions, stop: &AtomicBool) -> Result<PathBuf> {
+    let path = &options.matrix;
+    let mut head = [0u8; 512];
+    let read = {
+        use std::io::Read;
+        let mut file = std::fs::File::open(path).at(path)?;
+        file.read(&mut head).at(path)?
+    };
+    let head = &head[..read];
+    let gzip = head.starts_with(&[0x1f, 0x8b]);
+    let text = !head.is_empty()
+        && !head.starts_with(b"ARROW1")
+        && !head.starts_with(b"PAR1")
+        && std::str::from_utf8(head).is_ok_and(|t| {
+            let first = t.lines().next().unwrap_or("");
+            first.contains('\t') || first.contains(',') || first.contains(';')
+        });
+    if !(gzip || text) {
+        return Ok(path.clone());
+    }
+    prepare_out_dir(&options.out)?;
+    let imported = options.out.join(SPILL_DIR).join("imported-matrix.arrow");
+    std::fs::create_dir_all(options.out.join(SPILL_DIR)).at(&options.out)?;
+    let mut import = input::text::ImportOptions::new(path, &imported);
+    import.format = Some(input::MatrixFormat::ArrowIpc);
+    import.id_column = options.id_column.clone();
+    import.value_type = input::ValueType::F64;
+    import.memory_bytes = options.memory_bytes / 2;
+    if !options.quiet {
+        eprintln!("importing text matrix {} first", path.display());
+    }
+    input::text::import_text_until(&import, stop)?;
+    Ok(imported)
 }
 
 /// The scan of an already opened source whose columns follow

@@ -164,7 +164,7 @@ fn bad_inputs_get_one_clear_error() {
         ),
         (
             vec!["--matrix", &text_matrix, "--samples", s, "--group", "cond"],
-            vec!["m.tsv", "import"],
+            vec!["m.tsv", "line 2"],
         ),
         (
             vec![
