@@ -33,6 +33,8 @@ pub enum Command {
     Demo(DemoArgs),
     /// Write a synthetic matrix (and its sample sheet) of any size.
     Simulate(crate::simulate::SimulateArgs),
+    /// Add multiple-testing adjusted columns to any table of p-values.
+    Adjust(crate::adjust_table::AdjustArgs),
 }
 
 #[derive(Args, Debug)]
@@ -119,7 +121,7 @@ pub fn parse_size(text: &str) -> std::result::Result<u64, String> {
     Ok((value * factor) as u64)
 }
 
-fn parse_lambda(text: &str) -> std::result::Result<LambdaChoice, String> {
+pub fn parse_lambda(text: &str) -> std::result::Result<LambdaChoice, String> {
     if text.eq_ignore_ascii_case("bootstrap") {
         return Ok(LambdaChoice::Bootstrap);
     }
@@ -200,6 +202,7 @@ fn dispatch(cli: Cli) -> Result<()> {
         }
         Command::Demo(args) => crate::demo::run_demo(&args.out, args.threads, &STOP),
         Command::Simulate(args) => crate::simulate::run_simulate(&args),
+        Command::Adjust(args) => crate::adjust_table::run_adjust(&args, &STOP),
     }
 }
 
