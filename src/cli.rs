@@ -37,6 +37,8 @@ pub enum Command {
     Import(crate::input::text::ImportArgs),
     /// Describe a matrix: shape, column types, missing values, summary figures.
     Inspect(crate::inspect::InspectArgs),
+    /// Add multiple-testing adjusted columns to any table of p-values.
+    Adjust(crate::adjust_table::AdjustArgs),
 }
 
 #[derive(Args, Debug)]
@@ -147,7 +149,7 @@ pub fn parse_size(text: &str) -> std::result::Result<u64, String> {
     Ok((value * factor) as u64)
 }
 
-fn parse_lambda(text: &str) -> std::result::Result<LambdaChoice, String> {
+pub fn parse_lambda(text: &str) -> std::result::Result<LambdaChoice, String> {
     if text.eq_ignore_ascii_case("bootstrap") {
         return Ok(LambdaChoice::Bootstrap);
     }
@@ -238,6 +240,7 @@ fn dispatch(cli: Cli) -> Result<()> {
         Command::Simulate(args) => crate::simulate::run_simulate(&args),
         Command::Import(args) => crate::input::text::run_import(&args),
         Command::Inspect(args) => crate::inspect::run_inspect(&args),
+        Command::Adjust(args) => crate::adjust_table::run_adjust(&args, &STOP),
     }
 }
 

@@ -8,6 +8,7 @@
 //! `maxt` (FDR and FWER out of core) -> `output` (results table). `scan`
 //! ties them together; `cli` is the command-line edge.
 
+pub mod adjust_table;
 pub mod cli;
 pub mod columns;
 pub mod demo;
