@@ -201,32 +201,69 @@ pub fn main_with_args(args: impl IntoIterator<Item = std::ffi::OsString>) -> i32
     let _ = ctrlc::set_handler(|| STOP.store(true, std::sync::atomic::Ordering::Relaxed));
     let cli = match Cli::try_parse_from(args) {
         Ok(cli) => cli,
+        Err(e) if e.use_stderr() => {
+            eprintln!("riffle: error: {}", clap_error_line(&e));
+            return exit_code::BAD_INPUT;
+        }
         Err(e) => {
+            // --help and --version: clap's own multi-line text on stdout.
             let _ = e.print();
-            return if e.use_stderr() {
-                exit_code::BAD_INPUT
-            } else {
-                exit_code::OK
-            };
+            return exit_code::OK;
         }
     };
     match dispatch(cli) {
         Ok(()) => exit_code::OK,
         Err(e) => {
-            eprintln!("riffle: error: {e}");
+            eprintln!("riffle: error: {}", error_line(&e));
             e.exit_code()
         }
     }
+}
+
+/// One line per error, so that logs of nightly jobs stay greppable: decoder
+/// messages from arrow/parquet may span lines.
+fn error_line(e: &RiffleError) -> String {
+    let mut text = one_line(&e.to_string());
+    if let RiffleError::Io { source, .. } = e {
+        use std::io::ErrorKind;
+        match source.kind() {
+            ErrorKind::StorageFull | ErrorKind::FileTooLarge | ErrorKind::QuotaExceeded => text
+                .push_str(
+                " (the disk, a quota or a file-size limit is full: free space or raise the limit, then rerun)",
+            ),
+            _ => {}
+        }
+    }
+    text
+}
+
+fn one_line(text: &str) -> String {
+    text.split_whitespace().collect::<Vec<_>>().join(" ")
+}
+
+/// clap's message without its "error: " prefix, usage block and help hint:
+/// the lines before the first blank line, joined.
+fn clap_error_line(e: &clap::Error) -> String {
+    let rendered = e.render().to_string();
+    let head: Vec<&str> = rendered
+        .lines()
+        .take_while(|l| !l.trim().is_empty())
+        .collect();
+    let text = one_line(&head.join(" "));
+    let text = text.strip_prefix("error: ").unwrap_or(&text).to_string();
+    format!("{text} (see riffle scan --help)")
 }
 
 fn dispatch(cli: Cli) -> Result<()> {
     match cli.command {
         Command::Scan(args) => {
             let two_levels = !args.test.is_k_group();
-            if two_levels && args.levels.as_ref().is_some_and(|l| l.len() != 2) {
+            if let Some(levels) = args.levels.as_ref().filter(|l| two_levels && l.len() != 2) {
                 return Err(RiffleError::options(format!(
-                    "--levels takes exactly two levels, A,B, for --test {} (effects are B minus A)",
-                    args.test.name()
+                    "--levels takes exactly two levels, A,B, for --test {} (effects are B minus A); found {}: {}",
+                    args.test.name(),
+                    levels.len(),
+                    levels.join(",")
                 )));
             }
             let options = args.to_options();

@@ -36,7 +36,7 @@ pub enum RiffleError {
         #[source]
         source: std::io::Error,
     },
-    #[error("interrupted")]
+    #[error("interrupted by a signal; partial outputs were removed, rerun the same command")]
     Interrupted,
     #[error("internal error: {0}")]
     Internal(String),

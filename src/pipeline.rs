@@ -107,12 +107,15 @@ pub fn run(
             scope.spawn(move || {
                 let mut scratch = KernelScratch::default();
                 while let Ok((index, block)) = rx.recv() {
-                    if worker_failed.load(Ordering::Relaxed) {
+                    // Queued chunks are drained unworked once stopping.
+                    if worker_failed.load(Ordering::Relaxed) || stop.load(Ordering::Relaxed) {
                         continue;
                     }
                     let t0 = Instant::now();
-                    let outcome =
-                        kernel.run_chunk(&block.values, block.rows(), count, &mut scratch);
+                    let Some(outcome) = run_in_pieces(&kernel, &block, count, &mut scratch, stop)
+                    else {
+                        continue;
+                    };
                     let seconds = t0.elapsed().as_secs_f64();
                     let chunk = FinishedChunk {
                         first_index: block.first_index,
@@ -171,4 +174,53 @@ pub fn run(
         stats.wall_seconds = started.elapsed().as_secs_f64();
         Ok(stats)
     })
+}
+
+/// Rows per kernel call inside a chunk: a large chunk against thousands of
+/// relabelings takes seconds, and an interrupt must not wait for it.
+const PIECE_ROWS: usize = 4096;
+
+/// The kernel over a chunk in pieces, checking `stop` between them; `None`
+/// when stopped. Results do not depend on how rows are grouped (counts are
+/// exact per feature; maxima and histograms merge), so this equals one call.
+fn run_in_pieces(
+    kernel: &Kernel,
+    block: &FeatureBlock,
+    count: bool,
+    scratch: &mut KernelScratch,
+    stop: &AtomicBool,
+) -> Option<ChunkOutcome> {
+    let rows = block.rows();
+    if !count || rows <= PIECE_ROWS {
+        return Some(kernel.run_chunk(&block.values, rows, count, scratch));
+    }
+    let n = block.n_samples;
+    let mut merged: Option<ChunkOutcome> = None;
+    for start in (0..rows).step_by(PIECE_ROWS) {
+        if stop.load(Ordering::Relaxed) {
+            return None;
+        }
+        let piece_rows = PIECE_ROWS.min(rows - start);
+        let values = &block.values[start * n..(start + piece_rows) * n];
+        let piece = kernel.run_chunk(values, piece_rows, count, scratch);
+        merged = Some(match merged {
+            None => piece,
+            Some(mut all) => {
+                all.features.extend(piece.features);
+                all.standardized.extend(piece.standardized);
+                for (m, v) in all.null_max.iter_mut().zip(&piece.null_max) {
+                    *m = m.max(*v);
+                }
+                if all.null_hist.is_empty() {
+                    all.null_hist = piece.null_hist;
+                } else {
+                    for (h, v) in all.null_hist.iter_mut().zip(&piece.null_hist) {
+                        *h += v;
+                    }
+                }
+                all
+            }
+        });
+    }
+    merged
 }

@@ -194,8 +194,33 @@ pub fn run_scan_on(
     options: &ScanOptions,
     stop: &AtomicBool,
 ) -> Result<ScanSummary> {
-    let started = Instant::now();
     validate(options)?;
+    let outcome = scan_into_out_dir(source, design, options, stop);
+    if outcome.is_err() {
+        remove_partial_outputs(options);
+    }
+    outcome
+}
+
+/// After a failed or interrupted run: no half-written table or run record
+/// may remain, and the spill (incomplete, possibly large on a full disk) goes
+/// too. Finished outputs of earlier runs in the folder are left alone.
+fn remove_partial_outputs(options: &ScanOptions) {
+    for format in [TableFormat::Parquet, TableFormat::Tsv] {
+        let table = options.out.join(format.file_name(RESULTS_STEM));
+        let _ = std::fs::remove_file(spill::temp_name(&table));
+    }
+    let _ = std::fs::remove_file(spill::temp_name(&options.out.join(RUN_RECORD)));
+    let _ = std::fs::remove_dir_all(options.out.join(SPILL_DIR));
+}
+
+fn scan_into_out_dir(
+    source: Box<dyn input::FeatureSource>,
+    design: &TwoGroupDesign,
+    options: &ScanOptions,
+    stop: &AtomicBool,
+) -> Result<ScanSummary> {
+    let started = Instant::now();
     let info = source.info().clone();
 
     let spec = test_spec(options, design)?;
@@ -276,6 +301,9 @@ pub fn run_scan_on(
             stop,
         )?;
         stats.wall_seconds += rank_started.elapsed().as_secs_f64();
+    }
+    if stop.load(std::sync::atomic::Ordering::Relaxed) {
+        return Err(RiffleError::Interrupted);
     }
     crate::maxt::write_null_max(&spill_dir, &null_max)?;
     if let Some(hist) = &null_hist {

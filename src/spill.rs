@@ -250,7 +250,8 @@ fn check_file(path: &Path, expect_record_len: bool) -> Result<u64> {
     let count = u64::from_le_bytes(trailer[0..8].try_into().unwrap());
     let stored_crc = u32::from_le_bytes(trailer[8..12].try_into().unwrap());
     let body = len - HEADER_LEN - TRAILER_LEN;
-    if expect_record_len && body != count * RECORD_LEN as u64 {
+    // checked_mul: a corrupted count must not overflow (found by fuzzing).
+    if expect_record_len && count.checked_mul(RECORD_LEN as u64) != Some(body) {
         return Err(bad(
             "trailer",
             &format!("{count} records announced but {body} bytes of records present"),
@@ -347,7 +348,19 @@ impl SpillReader {
     pub fn next_id(&mut self, id: &mut String) -> Result<()> {
         let mut len = [0u8; 4];
         self.ids.read_exact(&mut len).at(&self.ids_path)?;
-        let mut bytes = vec![0u8; u32::from_le_bytes(len) as usize];
+        let len = u32::from_le_bytes(len) as u64;
+        // A corrupted length must not become a 4 GB allocation.
+        if len > self.ids.limit() {
+            return Err(RiffleError::bad_input(
+                &self.ids_path,
+                format!("id {}", self.read),
+                format!(
+                    "an id of {len} bytes is announced but only {} bytes remain",
+                    self.ids.limit()
+                ),
+            ));
+        }
+        let mut bytes = vec![0u8; len as usize];
         self.ids.read_exact(&mut bytes).at(&self.ids_path)?;
         id.clear();
         id.push_str(std::str::from_utf8(&bytes).map_err(|_| {

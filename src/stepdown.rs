@@ -220,6 +220,10 @@ impl SortedRows {
     }
 }
 
+/// Rows per kernel call of the rank pass: a multiple of the kernel's row
+/// tile, small enough to be done in well under a second.
+const RANK_PIECE_ROWS: usize = 4096;
+
 /// Per-feature outcome of the rank pass, in rank order.
 pub const RANK_RECORD: usize = 24;
 
@@ -261,21 +265,32 @@ pub fn rank_pass(
             handles.push(scope.spawn(move || -> (Vec<f64>, Vec<u64>) {
                 let mut state = RankState::new(col0, cols, kernel.pooled_null());
                 let mut scratch = KernelScratch::default();
-                while let Ok((seq, chunk)) = rx.recv() {
-                    if failed.load(Ordering::Relaxed) {
+                'chunks: while let Ok((seq, chunk)) = rx.recv() {
+                    if failed.load(Ordering::Relaxed) || stop.load(Ordering::Relaxed) {
                         continue;
                     }
                     let rows = chunk.keys.len();
                     let mut exceed = vec![0u64; rows];
                     let mut reached = vec![0u64; rows];
-                    kernel.rank_rows(
-                        &chunk.rows,
-                        &chunk.keys,
-                        &mut state,
-                        &mut exceed,
-                        &mut reached,
-                        &mut scratch,
-                    );
+                    // In pieces of whole row tiles, so that an interrupt is
+                    // noticed within a fraction of a second; rows are visited
+                    // in the same order either way, so the running maxima
+                    // and counts are unchanged.
+                    let n = chunk.rows.len() / rows.max(1);
+                    for start in (0..rows).step_by(RANK_PIECE_ROWS) {
+                        if stop.load(Ordering::Relaxed) {
+                            continue 'chunks;
+                        }
+                        let end = (start + RANK_PIECE_ROWS).min(rows);
+                        kernel.rank_rows(
+                            &chunk.rows[start * n..end * n],
+                            &chunk.keys[start..end],
+                            &mut state,
+                            &mut exceed[start..end],
+                            &mut reached[start..end],
+                            &mut scratch,
+                        );
+                    }
                     if part_tx.send((seq, w, exceed, reached)).is_err() {
                         break;
                     }

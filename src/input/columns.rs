@@ -121,7 +121,7 @@ pub(crate) fn plan_columns(
             path,
             "column list",
             format!(
-                "{} of {} requested sample(s) have no column: {}",
+                "{} of {} samples named in the sample sheet have no column in this matrix: {}",
                 missing.len(),
                 samples.len(),
                 quoted_list(&missing, missing.len())

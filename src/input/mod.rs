@@ -106,6 +106,22 @@ pub fn detect_format(path: &Path) -> Result<MatrixFormat> {
     };
     let tail = &tail[..tail_len];
 
+    // A file cut inside its leading magic still says what it was meant to be.
+    for (magic, name) in [
+        (ARROW_FILE_HEAD, "an Arrow IPC"),
+        (PARQUET_MAGIC, "a Parquet"),
+    ] {
+        if head.len() < magic.len() && magic.starts_with(head) {
+            return Err(RiffleError::bad_input(
+                path,
+                "end of file",
+                format!(
+                    "the file is only {len} bytes, the start of {name} file's leading magic; \
+                     it is truncated or was not completely written"
+                ),
+            ));
+        }
+    }
     if head.starts_with(ARROW_FILE_HEAD) {
         // The smallest valid file is head magic, footer length and tail magic.
         if tail == ARROW_FILE_TAIL && len >= 18 {
@@ -217,7 +233,8 @@ fn check_requested_samples(id_column: &str, samples: &[String]) -> Result<()> {
     for sample in samples {
         if sample == id_column {
             return Err(RiffleError::options(format!(
-                "sample '{sample}' has the same name as the feature id column"
+                "--id-column '{id_column}' names a sample of the sample sheet; \
+                 give the name of the feature id column (default 'feature')"
             )));
         }
         if !seen.insert(sample.as_str()) {

@@ -583,7 +583,7 @@ fn schema_problem_files(dir: &Path) -> Vec<(PathBuf, &'static str, Vec<String>, 
             good,
             "feature",
             many_missing,
-            "7 of 8 requested sample(s) have no column: 'T1', 'T2', 'T3', 'T4', 'T5' and 2 more",
+            "7 of 8 samples named in the sample sheet have no column in this matrix: 'T1', 'T2', 'T3', 'T4', 'T5' and 2 more",
         ));
     }
     cases

@@ -606,24 +606,40 @@ fn no_within_variance(raw: &[f64], labels: &[u8]) -> bool {
     true
 }
 
-/// Centre and scale to unit sample SD, in f64 (two passes, so huge means
-/// with tiny spreads keep their digits). Returns sum |z|.
+/// Centre and scale to unit sample SD, in f64. Returns sum |z|.
+///
+/// Values are first divided by a power of two near their largest magnitude
+/// (exact in binary, and no sum can overflow even near f64's limits), then
+/// shifted by the first value before the mean is taken: for a row such as
+/// 1e9 + 1e-3 * u the differences keep all their digits (Sterbenz), where
+/// dividing by a non-power-of-two scale first would round away all but four.
+/// The mean is refined by a second pass over the residuals.
 pub fn standardize(x: &[f64], z: &mut [f64]) -> f64 {
     let n = x.len() as f64;
-    // Scale first so that values near f64's limits cannot overflow the sums.
-    let scale = x.iter().fold(0.0f64, |m, v| m.max(v.abs()));
-    let mean = x.iter().map(|v| v / scale).sum::<f64>() / n;
-    let ss: f64 = x
+    let largest = x.iter().fold(0.0f64, |m, v| m.max(v.abs()));
+    let scale = if largest > 0.0 && largest.is_finite() {
+        // Clamped so that neither the scale nor its reciprocal leaves the normal range.
+        2f64.powi((largest.log2().floor() as i32).clamp(-1000, 1000))
+    } else {
+        1.0
+    };
+    let first = x.first().map_or(0.0, |v| v / scale);
+    for (zi, v) in z.iter_mut().zip(x) {
+        *zi = v / scale - first;
+    }
+    let mut mean = z.iter().sum::<f64>() / n;
+    mean += z.iter().map(|d| d - mean).sum::<f64>() / n;
+    let ss: f64 = z
         .iter()
-        .map(|v| {
-            let d = v / scale - mean;
-            d * d
+        .map(|d| {
+            let c = d - mean;
+            c * c
         })
         .sum();
     let sd = (ss / (n - 1.0)).sqrt();
     let mut abs_sum = 0.0;
-    for (zi, v) in z.iter_mut().zip(x) {
-        *zi = (v / scale - mean) / sd;
+    for zi in z.iter_mut() {
+        *zi = (*zi - mean) / sd;
         abs_sum += zi.abs();
     }
     abs_sum
