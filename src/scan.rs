@@ -216,7 +216,7 @@ fn remove_partial_outputs(options: &ScanOptions) {
 
 fn scan_into_out_dir(
     source: Box<dyn input::FeatureSource>,
-    design: &TwoGroupDesign,
+    design: &StudyDesign,
     options: &ScanOptions,
     stop: &AtomicBool,
 ) -> Result<ScanSummary> {
