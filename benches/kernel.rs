@@ -16,13 +16,18 @@ use riffle::stats::prepare::TestSpec;
 use riffle::stats::{Side, Sizes, TestKind};
 
 fn env(name: &str, default: usize) -> usize {
-    std::env::var(name).ok().and_then(|v| v.parse().ok()).unwrap_or(default)
+    std::env::var(name)
+        .ok()
+        .and_then(|v| v.parse().ok())
+        .unwrap_or(default)
 }
 
 /// Plain f32 GEMM of (rows x n) by (n x cols), tile by tile as the kernel
 /// does (64 x 512 blocks), on `threads` threads splitting the rows.
 fn gemm_rate(rows: usize, n: usize, cols: usize, threads: usize) -> f64 {
-    let a: Vec<f32> = (0..rows * n).map(|i| ((i * 7919) % 1000) as f32 / 1000.0).collect();
+    let a: Vec<f32> = (0..rows * n)
+        .map(|i| ((i * 7919) % 1000) as f32 / 1000.0)
+        .collect();
     let b: Vec<f32> = (0..n * cols).map(|i| ((i * 104729) % 2) as f32).collect();
     let started = Instant::now();
     std::thread::scope(|scope| {
@@ -39,10 +44,20 @@ fn gemm_rate(rows: usize, n: usize, cols: usize, threads: usize) -> f64 {
                         let ct = 512.min(cols - c0);
                         unsafe {
                             matrixmultiply::sgemm(
-                                rt, n, ct, 1.0,
-                                a.as_ptr().add(r0 * n), n as isize, 1,
-                                b.as_ptr().add(c0), cols as isize, 1,
-                                0.0, c.as_mut_ptr(), ct as isize, 1,
+                                rt,
+                                n,
+                                ct,
+                                1.0,
+                                a.as_ptr().add(r0 * n),
+                                n as isize,
+                                1,
+                                b.as_ptr().add(c0),
+                                cols as isize,
+                                1,
+                                0.0,
+                                c.as_mut_ptr(),
+                                ct as isize,
+                                1,
                             );
                         }
                         checksum += c[0];
@@ -59,7 +74,14 @@ fn gemm_rate(rows: usize, n: usize, cols: usize, threads: usize) -> f64 {
 fn kernel_rate(test: TestKind, rows: usize, n: usize, perms: usize, threads: usize) -> f64 {
     let labels: Vec<u8> = (0..n).map(|i| u8::from(i >= n / 2)).collect();
     let relabel = Relabelings::draw(&labels, perms, 1);
-    let spec = TestSpec::two_group(test, Side::Both, Sizes { n_a: n / 2, n_b: n - n / 2 });
+    let spec = TestSpec::two_group(
+        test,
+        Side::Both,
+        Sizes {
+            n_a: n / 2,
+            n_b: n - n / 2,
+        },
+    );
     let kernel = Arc::new(Kernel::new(spec, labels, relabel));
     let raw: Vec<f64> = (0..rows * n)
         .map(|i| ((i as u64).wrapping_mul(0x9E37_79B9_7F4A_7C15) >> 40) as f64 / 16_777_216.0)

@@ -145,7 +145,21 @@ pub fn run_scan(options: &ScanOptions, stop: &AtomicBool) -> Result<ScanSummary>
     check_design_options(options)?;
     let design = StudyDesign::from_sheet(&sheet, options.test.design(), &columns)?;
     let matrix = import_if_text(options, stop)?;
-    let source = input::open_matrix(&matrix, &options.id_column, &design.samples)?;
+    let source = input::open_matrix(&matrix, &options.id_column, &design.samples).map_err(|e| {
+        // Name the user's file, not the scratch copy imported from it.
+        match e {
+            RiffleError::BadInput {
+                path,
+                place,
+                message,
+            } if path != options.matrix => RiffleError::BadInput {
+                path: options.matrix.clone(),
+                place: format!("{place} (imported)"),
+                message,
+            },
+            other => other,
+        }
+    })?;
     run_scan_on(source, &design, options, stop)
 }
 

@@ -161,7 +161,9 @@ impl StudyDesign {
 
     fn groups(sheet: &SampleSheet, columns: &DesignColumns) -> Result<Self> {
         let group = columns.group.as_deref().ok_or_else(|| {
-            RiffleError::options("this test compares groups: name the group column with --group")
+            RiffleError::options(
+                "--group is required for this test: name the sample-sheet column with the groups",
+            )
         })?;
         let col = sheet.column_index(group, "--group")?;
         let mut counts: BTreeMap<&str, usize> = BTreeMap::new();
@@ -183,7 +185,8 @@ impl StudyDesign {
                 for (i, level) in levels.iter().enumerate() {
                     if levels[..i].contains(level) {
                         return Err(RiffleError::options(format!(
-                            "--levels names '{level}' twice"
+                            "--levels names '{level}' twice; give two different levels \
+                             (or more, all different, for anova/kruskal)"
                         )));
                     }
                     if !counts.contains_key(level.as_str()) {
@@ -206,7 +209,8 @@ impl StudyDesign {
                 &sheet.path,
                 format!("column '{group}'"),
                 format!(
-                    "expected at least two levels, found {} ({})",
+                    "found {} level ({}); a comparison needs at least two levels \
+                     (exactly two levels for a two-group test)",
                     levels.len(),
                     join_counts(&counts)
                 ),
