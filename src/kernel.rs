@@ -492,38 +492,48 @@ impl Kernel {
                 histogram[NullHistogram::bin(v)] += 1;
             }
         }
-        // Fast pass: clear exceedances, and whether anything needs f64.
+        // Fast pass (vectorizes): clear exceedances, and whether any value
+        // needs f64 — near the observed one, or above a running maximum.
         let mut clear = 0u32;
-        let mut unsure = false;
+        let mut near = false;
+        let mut over = false;
         for (&v, &floor) in tile.iter().zip(floors.iter()) {
             clear += u32::from(v > row.above);
-            unsure |= !(v > row.above || v < row.below) | (v > floor);
-        }
-        if unsure {
-            clear = 0;
+            near |= !(v > row.above || v < row.below);
+            over |= v > floor;
         }
         let mut count = u64::from(clear);
+        if !(near || over) {
+            if let Some(reached) = reached {
+                *reached += maxima.iter().filter(|&&m| m >= row.threshold).count() as u64;
+            }
+            return count;
+        }
         let exact_at = |j: usize| {
             self.spec
                 .kernel_stat_with(z, assignment(&self.spec, &self.relabel, col0 + j))
         };
-        if unsure {
+        if near {
             for (j, &v) in tile.iter().enumerate() {
-                let exact = if v > row.above {
-                    count += 1;
-                    None
-                } else if v < row.below {
-                    None
-                } else {
+                if !(v > row.above || v < row.below) {
                     let e = exact_at(j);
                     count += u64::from(e >= row.threshold);
-                    if v.is_nan() && !histogram.is_empty() {
-                        histogram[NullHistogram::bin(e as f32)] += 1;
+                    if v.is_nan() {
+                        if !histogram.is_empty() {
+                            histogram[NullHistogram::bin(e as f32)] += 1;
+                        }
+                        if e > maxima[j] {
+                            maxima[j] = e;
+                            floors[j] = self.max_floor(e, self.global_band());
+                        }
                     }
-                    Some(e)
-                };
-                if v > floors[j] || v.is_nan() {
-                    let e = exact.unwrap_or_else(|| exact_at(j));
+                }
+            }
+        }
+        if over {
+            for (j, &v) in tile.iter().enumerate() {
+                if v > floors[j] {
+                    let e = exact_at(j);
                     if e > maxima[j] {
                         maxima[j] = e;
                         floors[j] = self.max_floor(e, self.global_band());
