@@ -83,8 +83,16 @@ fn kernel_rate(test: TestKind, rows: usize, n: usize, perms: usize, threads: usi
         },
     );
     let kernel = Arc::new(Kernel::new(spec, labels, relabel));
-    let raw: Vec<f64> = (0..rows * n)
-        .map(|i| ((i as u64).wrapping_mul(0x9E37_79B9_7F4A_7C15) >> 40) as f64 / 16_777_216.0)
+    // Independent values (SplitMix64 of the index): structured data would
+    // make features near-copies of each other and flood the tie checks.
+    let raw: Vec<f64> = (0..rows * n as u64 as usize)
+        .map(|i| {
+            let mut x = (i as u64).wrapping_add(0x9E37_79B9_7F4A_7C15);
+            x = (x ^ (x >> 30)).wrapping_mul(0xBF58_476D_1CE4_E5B9);
+            x = (x ^ (x >> 27)).wrapping_mul(0x94D0_49BB_1331_11EB);
+            x ^= x >> 31;
+            (x >> 11) as f64 / (1u64 << 53) as f64
+        })
         .collect();
     let chunk = 2048;
     let started = Instant::now();

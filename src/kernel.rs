@@ -9,7 +9,7 @@
 
 use crate::design::Relabelings;
 use crate::stats::prepare::{Assignment, PrepScratch, Prepared, Status, TestSpec};
-use crate::stats::DesignKind;
+use crate::stats::{DesignKind, Side};
 
 use crate::stats::TestKind;
 
@@ -58,6 +58,11 @@ pub struct KernelScratch {
     tested: Vec<usize>,
     rows: RowBuffers,
     tiles: TileBuffers,
+    /// Running per-relabelling maxima over every chunk this worker ran:
+    /// kept across chunks so that few values need an f64 recheck (maxima
+    /// merge by max, so the total does not depend on who ran what).
+    maxima: Vec<f64>,
+    floors: Vec<f32>,
 }
 
 impl Kernel {
@@ -144,12 +149,15 @@ impl Kernel {
         for &r in &s.tested {
             standardized.extend_from_slice(&s.z64[r * n..(r + 1) * n]);
         }
-        let mut null_max = vec![f64::NEG_INFINITY; b_total];
+        if s.maxima.len() != b_total {
+            s.maxima = vec![f64::NEG_INFINITY; b_total];
+            s.floors = vec![f32::NEG_INFINITY; b_total];
+        }
         let t = s.tested.len();
         if t == 0 || b_total == 0 || !count {
             return ChunkOutcome {
                 features,
-                null_max,
+                null_max: s.maxima.clone(),
                 standardized,
                 null_hist: Vec::new(),
             };
@@ -160,7 +168,7 @@ impl Kernel {
             .map(|&r| features[r].prepared.kernel_obs)
             .collect();
         let rows_view = self.load_rows(&standardized, &obs, &mut s.rows);
-        let mut floors = vec![f32::NEG_INFINITY; b_total];
+        let (floors, null_max) = (&mut s.floors, &mut s.maxima);
         let mut exceed = vec![0u64; t];
         let mut null_hist = if self.pooled_null {
             vec![0u64; NullHistogram::BINS]
@@ -186,7 +194,7 @@ impl Kernel {
         }
         ChunkOutcome {
             features,
-            null_max,
+            null_max: s.maxima.clone(),
             standardized,
             null_hist,
         }
@@ -320,8 +328,7 @@ impl Kernel {
                     } else if r > 1 {
                         self.between_groups_tile(wide, ct);
                     } else {
-                        let side = self.spec.side;
-                        wide.iter_mut().for_each(|v| *v = side.orient32(*v));
+                        orient_all(self.spec.side, wide);
                     }
                     visit(row0 + i, col0, &wide[..ct]);
                 }
@@ -379,10 +386,10 @@ impl Kernel {
         let n = self.units() as f64;
         let delta = 2.0 * (n + 2.0) * F32_UNIT * abs_sum + 1e-12;
         if self.spec.model.is_some() {
-            return 1e-3 * (1.0 + kernel_obs.abs());
+            return 2e-4 * (1.0 + kernel_obs.abs());
         }
         match self.spec.test {
-            TestKind::Welch => 1e-3 * (1.0 + kernel_obs.abs()),
+            TestKind::Welch => 2e-4 * (1.0 + kernel_obs.abs()),
             TestKind::Anova | TestKind::Kruskal => {
                 // d(s^2/g) <= (2 |s| delta + delta^2) / g with |s| <= sqrt(g (n-1)),
                 // and class 0's sum carries the others' errors.
@@ -414,8 +421,8 @@ impl Kernel {
     /// An f32 value below this cannot belong to an f64 statistic above `max`.
     fn max_floor(&self, max: f64, chunk_band: f64) -> f32 {
         let relative = match self.spec.test {
-            _ if self.spec.model.is_some() => 1e-3 * (1.0 + max.abs()),
-            TestKind::Welch => 1e-3 * (1.0 + max.abs()),
+            _ if self.spec.model.is_some() => 2e-4 * (1.0 + max.abs()),
+            TestKind::Welch => 2e-4 * (1.0 + max.abs()),
             _ => 0.0,
         };
         (max - chunk_band - relative - 1e-6 * (1.0 + max.abs())) as f32
@@ -455,20 +462,21 @@ impl Kernel {
         let sizes = self.spec.sizes;
         let (na, nb) = (sizes.n_a as f32, sizes.n_b as f32);
         let total_sq = na + nb - 1.0;
-        let side = self.spec.side;
+        let (inv_na, inv_nb) = (1.0 / na, 1.0 / nb);
+        let (var_a, var_b) = (1.0 / ((na - 1.0) * na), 1.0 / ((nb - 1.0) * nb));
+        let diff = inv_na + inv_nb;
+        // Branch-free so that it vectorizes; the side is applied after.
         for (v, &q1) in sums.iter_mut().zip(squares) {
             let s1 = *v;
+            let s1sq = s1 * s1;
             let q0 = total_sq - q1;
-            let ss_b = q1 - s1 * s1 / nb;
-            let ss_a = q0 - s1 * s1 / na;
-            let t = if ss_b > 1e-2 * q1 && ss_a > 1e-2 * q0 {
-                let se2 = ss_a / ((na - 1.0) * na) + ss_b / ((nb - 1.0) * nb);
-                (s1 / nb + s1 / na) / se2.sqrt()
-            } else {
-                f32::NAN
-            };
-            *v = side.orient32(t);
+            let ss_b = q1 - s1sq * inv_nb;
+            let ss_a = q0 - s1sq * inv_na;
+            let conditioned = (ss_b > 1e-2 * q1) & (ss_a > 1e-2 * q0);
+            let t = s1 * diff / (ss_a * var_a + ss_b * var_b).sqrt();
+            *v = if conditioned { t } else { f32::NAN };
         }
+        orient_all(self.spec.side, sums);
     }
 
     /// Counts relabelings at least as extreme as the row's observed
@@ -499,7 +507,7 @@ impl Kernel {
         let mut over = false;
         for (&v, &floor) in tile.iter().zip(floors.iter()) {
             clear += u32::from(v > row.above);
-            near |= !(v > row.above || v < row.below);
+            near |= !((v > row.above) | (v < row.below));
             over |= v > floor;
         }
         let mut count = u64::from(clear);
@@ -690,6 +698,15 @@ struct RowsView<'a> {
     z32: &'a [f32],
     sq32: &'a [f32],
     band: &'a [f64],
+}
+
+/// "Larger is more extreme" for a whole slice, the side chosen once.
+fn orient_all(side: Side, values: &mut [f32]) {
+    match side {
+        Side::Both => values.iter_mut().for_each(|v| *v = v.abs()),
+        Side::Greater => {}
+        Side::Less => values.iter_mut().for_each(|v| *v = -*v),
+    }
 }
 
 /// Relabelling `b` in the form the test's statistic needs.
