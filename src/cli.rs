@@ -33,6 +33,25 @@ pub enum Command {
     Demo(DemoArgs),
     /// Write a synthetic matrix (and its sample sheet) of any size.
     Simulate(crate::simulate::SimulateArgs),
+    /// Plots and one self-contained HTML page for a finished run.
+    Report(ReportArgs),
+}
+
+#[derive(Args, Debug)]
+pub struct ReportArgs {
+    /// Output folder of a finished scan (holding run.json).
+    #[arg(long)]
+    pub run: PathBuf,
+    /// Draw the permutation null of this feature (repeatable) [default:
+    /// the 3 with the smallest p_perm].
+    #[arg(long = "show-feature", value_name = "ID")]
+    pub show_feature: Vec<String>,
+    /// FDR level marked on the volcano plot (q_bh at or below it).
+    #[arg(long, default_value_t = 0.05)]
+    pub fdr: f64,
+    /// Report folder [default: <RUN>/report].
+    #[arg(long)]
+    pub out: Option<PathBuf>,
 }
 
 #[derive(Args, Debug)]
@@ -96,6 +115,9 @@ pub struct ScanArgs {
     /// No progress output.
     #[arg(long)]
     pub quiet: bool,
+    /// Do not write the run report (<OUT>/report/).
+    #[arg(long)]
+    pub no_report: bool,
 }
 
 #[derive(Args, Debug)]
@@ -162,6 +184,7 @@ impl ScanArgs {
             maxt: self.maxt,
             pooled_null: self.pooled_null,
             quiet: self.quiet,
+            report: !self.no_report,
         }
     }
 }
@@ -210,6 +233,16 @@ fn dispatch(cli: Cli) -> Result<()> {
         }
         Command::Demo(args) => crate::demo::run_demo(&args.out, args.threads, &STOP),
         Command::Simulate(args) => crate::simulate::run_simulate(&args),
+        Command::Report(args) => {
+            let written = crate::report::write_report(&crate::report::ReportOptions {
+                run_dir: args.run,
+                show_features: args.show_feature,
+                fdr: args.fdr,
+                out: args.out,
+            })?;
+            println!("{}", written.html.display());
+            Ok(())
+        }
     }
 }
 

@@ -48,6 +48,8 @@ pub struct ScanOptions {
     /// Pooled-null FDR (q_pooled): histogram of every relabelled statistic.
     pub pooled_null: bool,
     pub quiet: bool,
+    /// Write the run report (`<out>/report/`) after the results.
+    pub report: bool,
 }
 
 #[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize, clap::ValueEnum)]
@@ -81,6 +83,7 @@ impl ScanOptions {
             maxt: MaxtMode::StepDown,
             pooled_null: false,
             quiet: true,
+            report: false,
         }
     }
 }
@@ -251,6 +254,9 @@ pub fn run_scan_on(
             / stats.wall_seconds.max(1e-9),
     };
     write_run_record(options, &info, design, &stats, &finalized, &summary)?;
+    if options.report {
+        crate::report::write_report(&crate::report::ReportOptions::for_run(&options.out))?;
+    }
     Ok(summary)
 }
 
