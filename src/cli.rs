@@ -39,6 +39,25 @@ pub enum Command {
     Inspect(crate::inspect::InspectArgs),
     /// Add multiple-testing adjusted columns to any table of p-values.
     Adjust(crate::adjust_table::AdjustArgs),
+    /// Plots and one self-contained HTML page for a finished run.
+    Report(ReportArgs),
+}
+
+#[derive(Args, Debug)]
+pub struct ReportArgs {
+    /// Output folder of a finished scan (holding run.json).
+    #[arg(long)]
+    pub run: PathBuf,
+    /// Draw the permutation null of this feature (repeatable) [default:
+    /// the 3 with the smallest p_perm].
+    #[arg(long = "show-feature", value_name = "ID")]
+    pub show_feature: Vec<String>,
+    /// FDR level marked on the volcano plot (q_bh at or below it).
+    #[arg(long, default_value_t = 0.05)]
+    pub fdr: f64,
+    /// Report folder [default: <RUN>/report].
+    #[arg(long)]
+    pub out: Option<PathBuf>,
 }
 
 #[derive(Args, Debug)]
@@ -118,6 +137,9 @@ pub struct ScanArgs {
     /// No progress output.
     #[arg(long)]
     pub quiet: bool,
+    /// Do not write the run report (<OUT>/report/).
+    #[arg(long)]
+    pub no_report: bool,
 }
 
 #[derive(Args, Debug)]
@@ -188,6 +210,7 @@ impl ScanArgs {
             maxt: self.maxt,
             pooled_null: self.pooled_null,
             quiet: self.quiet,
+            report: !self.no_report,
         }
     }
 }
@@ -278,6 +301,16 @@ fn dispatch(cli: Cli) -> Result<()> {
         Command::Import(args) => crate::input::text::run_import(&args),
         Command::Inspect(args) => crate::inspect::run_inspect(&args),
         Command::Adjust(args) => crate::adjust_table::run_adjust(&args, &STOP),
+        Command::Report(args) => {
+            let written = crate::report::write_report(&crate::report::ReportOptions {
+                run_dir: args.run,
+                show_features: args.show_feature,
+                fdr: args.fdr,
+                out: args.out,
+            })?;
+            println!("{}", written.html.display());
+            Ok(())
+        }
     }
 }
 

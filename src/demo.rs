@@ -28,6 +28,7 @@ pub fn run_demo(out: &Path, threads: Option<usize>, stop: &AtomicBool) -> Result
         options.threads = t;
     }
     options.quiet = false;
+    options.report = true;
     eprintln!("riffle demo: leaf transcripts, control vs heat-stressed seedlings (invented data)");
     let summary = run_scan(&options, stop)?;
     println!("{}", summary_text(&summary));

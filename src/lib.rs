@@ -22,6 +22,7 @@ pub mod multitest;
 pub mod output;
 pub mod pipeline;
 pub mod progress;
+pub mod report;
 pub mod scan;
 pub mod simulate;
 pub mod spill;

@@ -58,6 +58,8 @@ pub struct ScanOptions {
     /// Pooled-null FDR (q_pooled): histogram of every relabelled statistic.
     pub pooled_null: bool,
     pub quiet: bool,
+    /// Write the run report (`<out>/report/`) after the results.
+    pub report: bool,
 }
 
 #[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize, clap::ValueEnum)]
@@ -95,6 +97,7 @@ impl ScanOptions {
             maxt: MaxtMode::StepDown,
             pooled_null: false,
             quiet: true,
+            report: false,
         }
     }
 }
@@ -346,6 +349,15 @@ fn scan_into_out_dir(
             / stats.wall_seconds.max(1e-9),
     };
     write_run_record(options, &info, design, &stats, &finalized, &summary)?;
+    if options.report {
+        // The results are complete and in place: a report that cannot be
+        // drawn is worth a warning, not a failed run.
+        if let Err(e) =
+            crate::report::write_report(&crate::report::ReportOptions::for_run(&options.out))
+        {
+            eprintln!("riffle: warning: the report was not written: {e}");
+        }
+    }
     Ok(summary)
 }
 

@@ -8,6 +8,9 @@
 //! mean difference and rank-sum, and the Welch t itself for Welch.
 
 pub mod prepare;
+pub mod relabelled;
+
+pub use relabelled::relabelled_statistics;
 
 use statrs::distribution::{ContinuousCDF, Normal, StudentsT};
 

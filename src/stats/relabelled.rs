@@ -1,0 +1,157 @@
+//! The permutation null of one feature, recomputed from its raw row for
+//! display: the kernel never keeps per-feature relabelled statistics (it
+//! only counts exceedances), so the report rebuilds them from the same
+//! relabelings, drawn again from the recorded seed.
+
+use super::prepare::{standardize, PrepScratch, Status, TestSpec};
+use super::{mid_ranks, welch_t, GroupSums, TestKind};
+use crate::design::Relabelings;
+
+/// The reported statistic of `raw` under every relabelling, in relabelling
+/// order (NaN where a relabelling leaves the feature untestable, e.g. no
+/// variance within either group).
+pub fn relabelled_statistics(spec: &TestSpec, raw: &[f64], relabelings: &Relabelings) -> Vec<f64> {
+    let mut z = vec![0.0; raw.len()];
+    let mut scratch = PrepScratch::default();
+    (0..relabelings.count)
+        .map(|b| {
+            let p = spec.prepare(raw, relabelings.row(b), &mut z, &mut scratch);
+            if p.status == Status::Tested {
+                p.statistic
+            } else {
+                f64::NAN
+            }
+        })
+        .collect()
+}
+
+/// The model distribution the reported statistic is compared with.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub enum ModelReference {
+    /// Student t with `df` degrees of freedom (centred, unit scale).
+    StudentT { df: f64 },
+    /// Normal approximation (of the Mann–Whitney U).
+    Normal { mean: f64, sd: f64 },
+}
+
+/// The model reference of one feature under the observed labels: Student t
+/// with n - 2 df (Student, and mean difference on the t scale), Welch t with
+/// the feature's Welch–Satterthwaite df, or for rank-sum the normal
+/// approximation N(nA nB / 2, tie-corrected sd) of U.
+pub fn model_reference(spec: &TestSpec, raw: &[f64], labels: &[u8]) -> ModelReference {
+    let sizes = spec.sizes;
+    let (na, nb) = (sizes.n_a as f64, sizes.n_b as f64);
+    let n = na + nb;
+    match spec.test {
+        TestKind::Student | TestKind::MeanDiff => ModelReference::StudentT { df: n - 2.0 },
+        TestKind::Welch => {
+            let mut z = vec![0.0; raw.len()];
+            standardize(raw, &mut z);
+            let (_, df) = welch_t(GroupSums::of(&z, labels), sizes);
+            ModelReference::StudentT { df }
+        }
+        _ => {
+            let mut order = Vec::new();
+            let mut ranks = vec![0.0; raw.len()];
+            let tie_sum = mid_ranks(raw, &mut order, &mut ranks);
+            ModelReference::Normal {
+                mean: na * nb / 2.0,
+                sd: (na * nb / 12.0 * ((n + 1.0) - tie_sum / (n * (n - 1.0)))).sqrt(),
+            }
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::stats::{Side, Sizes};
+
+    /// Student (1908) sleep data, drug A then drug B (values as listed in
+    /// /work/shared/DESIGN.md §8, checked there with scipy).
+    const SLEEP_A: [f64; 10] = [0.7, -1.6, -0.2, -1.2, -0.1, 3.4, 3.7, 0.8, 0.0, 2.0];
+    const SLEEP_B: [f64; 10] = [1.9, 0.8, 1.1, 0.1, -0.1, 4.4, 5.5, 1.6, 4.6, 3.4];
+
+    fn sleep() -> (Vec<f64>, Vec<u8>) {
+        let raw: Vec<f64> = SLEEP_A.iter().chain(&SLEEP_B).copied().collect();
+        let labels: Vec<u8> = (0..20).map(|i| u8::from(i >= 10)).collect();
+        (raw, labels)
+    }
+
+    fn spec(test: TestKind) -> TestSpec {
+        TestSpec {
+            test,
+            side: Side::Both,
+            sizes: Sizes { n_a: 10, n_b: 10 },
+        }
+    }
+
+    /// Relabelings given explicitly: the observed labels, then the groups
+    /// swapped (which negates t and turns U into nA nB - U).
+    fn explicit(rows: &[Vec<u8>]) -> Relabelings {
+        Relabelings {
+            n: rows[0].len(),
+            count: rows.len(),
+            exact: false,
+            labels: rows.concat(),
+        }
+    }
+
+    #[test]
+    fn statistics_under_given_labels_match_published_values() {
+        let (raw, labels) = sleep();
+        let swapped: Vec<u8> = labels.iter().map(|l| 1 - l).collect();
+        let r = explicit(&[labels.clone(), swapped]);
+        // Student (1908) sleep data: Welch t = 1.8608 for B minus A, pooled
+        // t likewise (DESIGN.md §8, values verified with scipy.stats.ttest_ind).
+        let welch = relabelled_statistics(&spec(TestKind::Welch), &raw, &r);
+        assert!((welch[0] - 1.8608).abs() < 1e-4, "{welch:?}");
+        assert!((welch[1] + 1.8608).abs() < 1e-4, "{welch:?}");
+        let student = relabelled_statistics(&spec(TestKind::Student), &raw, &r);
+        assert!((student[0] - 1.8608).abs() < 1e-4, "{student:?}");
+        // Mann–Whitney U: 25.5 for the smaller group statistic (DESIGN.md
+        // §8, scipy.stats.mannwhitneyu); U_B + U_A = nA nB = 100.
+        let u = relabelled_statistics(&spec(TestKind::RankSum), &raw, &r);
+        assert!(
+            (u[0] - 74.5).abs() < 1e-12 && (u[1] - 25.5).abs() < 1e-12,
+            "{u:?}"
+        );
+        // Difference in means of B and A: 1.58 hours (from the data above).
+        let d = relabelled_statistics(&spec(TestKind::MeanDiff), &raw, &r);
+        assert!((d[0] - 1.58).abs() < 1e-12 && (d[1] + 1.58).abs() < 1e-12);
+    }
+
+    #[test]
+    fn references_follow_the_model_of_each_test() {
+        let (raw, labels) = sleep();
+        // Welch–Satterthwaite df 17.776 for the sleep data (DESIGN.md §8).
+        match model_reference(&spec(TestKind::Welch), &raw, &labels) {
+            ModelReference::StudentT { df } => assert!((df - 17.776).abs() < 1e-3, "{df}"),
+            other => panic!("{other:?}"),
+        }
+        assert_eq!(
+            model_reference(&spec(TestKind::Student), &raw, &labels),
+            ModelReference::StudentT { df: 18.0 }
+        );
+        // Without ties the U variance is nA nB (n + 1) / 12 (Mann & Whitney
+        // 1947; common practice): 10 * 10 * 21 / 12 = 175.
+        let distinct: Vec<f64> = (0..20).map(|i| i as f64 * 1.5).collect();
+        match model_reference(&spec(TestKind::RankSum), &distinct, &labels) {
+            ModelReference::Normal { mean, sd } => {
+                assert_eq!(mean, 50.0);
+                assert!((sd * sd - 175.0).abs() < 1e-9);
+            }
+            other => panic!("{other:?}"),
+        }
+    }
+
+    #[test]
+    fn drawn_relabelings_keep_group_sizes_so_every_statistic_is_finite() {
+        let (raw, labels) = sleep();
+        let r = Relabelings::draw(&labels, 500, 11);
+        let t = relabelled_statistics(&spec(TestKind::Welch), &raw, &r);
+        assert_eq!(t.len(), 500);
+        assert!(t.iter().all(|v| v.is_finite()));
+        assert_eq!(t, relabelled_statistics(&spec(TestKind::Welch), &raw, &r));
+    }
+}
