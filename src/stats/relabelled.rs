@@ -79,11 +79,7 @@ mod tests {
     }
 
     fn spec(test: TestKind) -> TestSpec {
-        TestSpec {
-            test,
-            side: Side::Both,
-            sizes: Sizes { n_a: 10, n_b: 10 },
-        }
+        TestSpec::two_group(test, Side::Both, Sizes { n_a: 10, n_b: 10 })
     }
 
     /// Relabelings given explicitly: the observed labels, then the groups
@@ -93,7 +89,9 @@ mod tests {
             n: rows[0].len(),
             count: rows.len(),
             exact: false,
+            sign_flips: false,
             labels: rows.concat(),
+            sources: Vec::new(),
         }
     }
 
