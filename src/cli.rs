@@ -28,7 +28,10 @@ pub struct Cli {
 #[derive(Subcommand, Debug)]
 pub enum Command {
     /// Test every feature of a matrix between two groups of samples.
+    #[command(args_override_self = true)]
     Scan(ScanArgs),
+    /// Combine shard folders (from `scan --shard`) into the whole scan's results.
+    Merge(MergeArgs),
     /// Run the bundled demo end to end and print a short summary.
     Demo(DemoArgs),
     /// Write a synthetic matrix (and its sample sheet) of any size.
@@ -140,6 +143,37 @@ pub struct ScanArgs {
     /// Do not write the run report (<OUT>/report/).
     #[arg(long)]
     pub no_report: bool,
+    /// Only shard K of N contiguous feature ranges (K from 1), written as a
+    /// shard folder for `riffle merge` [default: from SLURM_ARRAY_TASK_ID
+    /// and SLURM_ARRAY_TASK_COUNT inside a Slurm array job].
+    #[arg(long, value_parser = crate::shard::ShardSpec::parse)]
+    pub shard: Option<crate::shard::ShardSpec>,
+    /// Exit at once (status 0) when --out holds a finished run of the same
+    /// input contents and result-defining options.
+    #[arg(long)]
+    pub skip_if_unchanged: bool,
+    /// TOML job file holding any of these options (keys: the option names
+    /// with dashes); options on the command line override it.
+    #[arg(long)]
+    pub job: Option<PathBuf>,
+    /// Seconds between checkpoints; a killed scan rerun with the same
+    /// command continues from the last one.
+    #[arg(long, default_value_t = 60.0)]
+    pub checkpoint_seconds: f64,
+}
+
+#[derive(Args, Debug)]
+pub struct MergeArgs {
+    /// Shard folders (the --out of each `scan --shard K/N`), in any order.
+    #[arg(required = true)]
+    pub shards: Vec<PathBuf>,
+    /// Output folder for the merged results.
+    #[arg(long)]
+    pub out: PathBuf,
+    #[arg(long, default_value = "1G", value_parser = parse_size)]
+    pub memory: u64,
+    #[arg(long)]
+    pub quiet: bool,
 }
 
 #[derive(Args, Debug)]
@@ -211,6 +245,9 @@ impl ScanArgs {
             pooled_null: self.pooled_null,
             quiet: self.quiet,
             report: !self.no_report,
+            shard: self.shard,
+            skip_if_unchanged: self.skip_if_unchanged,
+            checkpoint_seconds: self.checkpoint_seconds,
         }
     }
 }
@@ -222,6 +259,13 @@ pub fn main_with_args(args: impl IntoIterator<Item = std::ffi::OsString>) -> i32
     // A second signal while stopping is ignored; the pipeline checks STOP
     // between chunks and the outputs are only renamed into place when whole.
     let _ = ctrlc::set_handler(|| STOP.store(true, std::sync::atomic::Ordering::Relaxed));
+    let args = match crate::job::expand_job_args(args.into_iter().collect()) {
+        Ok(args) => args,
+        Err(e) => {
+            eprintln!("riffle: error: {e}");
+            return e.exit_code();
+        }
+    };
     let cli = match Cli::try_parse_from(args) {
         Ok(cli) => cli,
         Err(e) if e.use_stderr() => {
@@ -289,9 +333,48 @@ fn dispatch(cli: Cli) -> Result<()> {
                     levels.join(",")
                 )));
             }
-            let options = args.to_options();
-            let summary = scan::run_scan(&options, &STOP)?;
-            if !options.quiet {
+            let mut options = args.to_options();
+            if options.shard.is_none() {
+                options.shard = crate::shard::ShardSpec::from_slurm_env()?;
+            }
+            match scan::run(&options, &STOP)? {
+                scan::ScanOutcome::Finished(summary) => {
+                    if !options.quiet {
+                        eprintln!("{}", crate::demo::summary_text(&summary));
+                    }
+                }
+                scan::ScanOutcome::Shard(record) => {
+                    if !options.quiet {
+                        eprintln!(
+                            "riffle: shard {} (features {}..{} of {}) written to {}; \
+                             combine all shards with `riffle merge`",
+                            record.shard,
+                            record.range.0,
+                            record.range.1,
+                            record.n_features,
+                            options.out.display()
+                        );
+                    }
+                }
+                scan::ScanOutcome::Unchanged { fingerprint } => eprintln!(
+                    "riffle: {} already holds a finished run of the same inputs and options \
+                     (fingerprint {fingerprint}); nothing to do",
+                    options.out.display()
+                ),
+            }
+            Ok(())
+        }
+        Command::Merge(args) => {
+            let summary = crate::merge::run_merge(
+                &crate::merge::MergeOptions {
+                    shards: args.shards,
+                    out: args.out,
+                    memory_bytes: args.memory,
+                    quiet: args.quiet,
+                },
+                &STOP,
+            )?;
+            if !args.quiet {
                 eprintln!("{}", crate::demo::summary_text(&summary));
             }
             Ok(())

@@ -15,13 +15,14 @@ use crate::multitest::{self, AdjustOptions, AdjustSummary, LambdaChoice, Method,
 use crate::output::{create_table, Cell, ColumnKind, TableFormat};
 use crate::pipeline::{self, ChunkSink, FinishedChunk, PipelineOptions, PipelineStats};
 use crate::progress::ProgressReporter;
+use crate::resume::{Checkpoint, Phase};
 use crate::spill::{self, PSource, Record, SpillReader, SpillWriter};
 use crate::stats::prepare::{Status, TestSpec};
 use crate::stats::{DesignKind, Side, Sizes, TestKind};
 use crate::stepdown::{rank_pass, reverse_and_scatter, RowSorter};
 
 /// Everything that defines a scan. Serialized into `run.json`.
-#[derive(Debug, Clone, serde::Serialize)]
+#[derive(Debug, Clone, serde::Serialize, serde::Deserialize)]
 pub struct ScanOptions {
     pub matrix: PathBuf,
     pub samples: PathBuf,
@@ -32,12 +33,16 @@ pub struct ScanOptions {
     /// effects B minus A; k-group tests: any number, default all).
     pub levels: Option<Vec<String>>,
     /// Numeric sample-sheet column for correlation tests.
+    #[serde(default)]
     pub trait_column: Option<String>,
     /// Pair id column for paired tests.
+    #[serde(default)]
     pub pair: Option<String>,
     /// Strata column: relabelings stay within strata.
+    #[serde(default)]
     pub strata: Option<String>,
     /// Covariate columns: a linear model per feature, Freedman–Lane.
+    #[serde(default)]
     pub covariates: Vec<String>,
     pub test: TestKind,
     pub side: Side,
@@ -59,10 +64,28 @@ pub struct ScanOptions {
     pub pooled_null: bool,
     pub quiet: bool,
     /// Write the run report (`<out>/report/`) after the results.
+    #[serde(default)]
     pub report: bool,
+    /// Only the K-th of N contiguous feature ranges, written as a shard
+    /// folder for `merge` (no results table).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub shard: Option<crate::shard::ShardSpec>,
+    /// Do nothing when `out` holds a finished run of the same inputs and
+    /// result-defining options.
+    #[serde(default)]
+    pub skip_if_unchanged: bool,
+    /// Seconds between checkpoints of the first pass (see `crate::resume`).
+    #[serde(default = "default_checkpoint_seconds")]
+    pub checkpoint_seconds: f64,
 }
 
-#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize, clap::ValueEnum)]
+fn default_checkpoint_seconds() -> f64 {
+    60.0
+}
+
+#[derive(
+    Debug, Clone, Copy, PartialEq, Eq, serde::Serialize, serde::Deserialize, clap::ValueEnum,
+)]
 #[serde(rename_all = "kebab-case")]
 pub enum MaxtMode {
     StepDown,
@@ -98,6 +121,9 @@ impl ScanOptions {
             pooled_null: false,
             quiet: true,
             report: false,
+            shard: None,
+            skip_if_unchanged: false,
+            checkpoint_seconds: default_checkpoint_seconds(),
         }
     }
 }
@@ -134,7 +160,32 @@ pub const SPILL_DIR: &str = "spill";
 pub const RESULTS_STEM: &str = "results";
 pub const RUN_RECORD: &str = "run.json";
 
+/// How a scan ended.
+#[derive(Debug)]
+pub enum ScanOutcome {
+    Finished(ScanSummary),
+    /// A shard folder was written (see `crate::shard`).
+    Shard(Box<crate::shard::ShardRecord>),
+    /// `skip_if_unchanged` and a finished run of the same inputs and
+    /// options is in `out`: nothing was done.
+    Unchanged {
+        fingerprint: String,
+    },
+}
+
+/// The whole scan; a shard run must use [`run`] instead.
 pub fn run_scan(options: &ScanOptions, stop: &AtomicBool) -> Result<ScanSummary> {
+    match run(options, stop)? {
+        ScanOutcome::Finished(summary) => Ok(summary),
+        _ => Err(RiffleError::options(
+            "this scan wrote a shard or was skipped; call scan::run to see which",
+        )),
+    }
+}
+
+/// A scan, a shard of one, or nothing when `skip_if_unchanged` finds the
+/// same finished run in `out`.
+pub fn run(options: &ScanOptions, stop: &AtomicBool) -> Result<ScanOutcome> {
     validate(options)?;
     let sheet = SampleSheet::read(&options.samples, &options.sample_column)?;
     let columns = DesignColumns {
@@ -163,7 +214,7 @@ pub fn run_scan(options: &ScanOptions, stop: &AtomicBool) -> Result<ScanSummary>
             other => other,
         }
     })?;
-    run_scan_on(source, &design, options, stop)
+    run_on(source, &design, options, stop)
 }
 
 /// Text matrices (TSV/CSV, gzipped or not, one row per feature) are
@@ -211,24 +262,42 @@ pub fn run_scan_on(
     options: &ScanOptions,
     stop: &AtomicBool,
 ) -> Result<ScanSummary> {
-    validate(options)?;
+    match run_on(source, design, options, stop)? {
+        ScanOutcome::Finished(summary) => Ok(summary),
+        _ => Err(RiffleError::options(
+            "this scan wrote a shard or was skipped; call scan::run_on to see which",
+        )),
+    }
+}
+
+/// [`run_scan_on`] for every kind of scan (whole, shard, skipped).
+pub fn run_on(
+    source: Box<dyn input::FeatureSource>,
+    design: &StudyDesign,
+    options: &ScanOptions,
+    stop: &AtomicBool,
+) -> Result<ScanOutcome> {
     let outcome = scan_into_out_dir(source, design, options, stop);
-    if outcome.is_err() {
-        remove_partial_outputs(options);
+    if let Err(e) = &outcome {
+        remove_partial_outputs(options, matches!(e, RiffleError::Interrupted));
     }
     outcome
 }
 
-/// After a failed or interrupted run: no half-written table or run record
-/// may remain, and the spill (incomplete, possibly large on a full disk) goes
-/// too. Finished outputs of earlier runs in the folder are left alone.
-fn remove_partial_outputs(options: &ScanOptions) {
+/// After a failed or interrupted run no half-written table or run record
+/// may remain. The spill goes too (incomplete, possibly large on a full
+/// disk), except after an interrupt, when its checkpoint lets the same
+/// command continue. Finished outputs of earlier runs are left alone.
+fn remove_partial_outputs(options: &ScanOptions, interrupted: bool) {
     for format in [TableFormat::Parquet, TableFormat::Tsv] {
         let table = options.out.join(format.file_name(RESULTS_STEM));
         let _ = std::fs::remove_file(spill::temp_name(&table));
     }
     let _ = std::fs::remove_file(spill::temp_name(&options.out.join(RUN_RECORD)));
-    let _ = std::fs::remove_dir_all(options.out.join(SPILL_DIR));
+    if !interrupted {
+        let _ = std::fs::remove_dir_all(options.out.join(SPILL_DIR));
+        Checkpoint::remove(&options.out);
+    }
 }
 
 fn scan_into_out_dir(
@@ -236,9 +305,25 @@ fn scan_into_out_dir(
     design: &StudyDesign,
     options: &ScanOptions,
     stop: &AtomicBool,
-) -> Result<ScanSummary> {
+) -> Result<ScanOutcome> {
     let started = Instant::now();
+    validate(options)?;
+    let provenance = crate::provenance::Provenance::of(options)?;
+    if options.skip_if_unchanged && options.shard.is_none() {
+        if let Some(previous) = crate::provenance::finished_run(&options.out) {
+            if previous.differences(&provenance).is_empty() {
+                return Ok(ScanOutcome::Unchanged {
+                    fingerprint: provenance.fingerprint,
+                });
+            }
+        }
+    }
     let info = source.info().clone();
+    let shard_range = options.shard.map(|s| s.range(info.n_features));
+    let mut source: Box<dyn input::FeatureSource> = match shard_range {
+        Some(range) => Box::new(crate::shard::RangeSource::new(source, range)?),
+        None => source,
+    };
 
     let spec = test_spec(options, design)?;
     let trait_classes = design.trait_classes();
@@ -252,88 +337,225 @@ fn scan_into_out_dir(
     );
 
     prepare_out_dir(&options.out)?;
+    // A stale shard record must not vouch for the spill this run rewrites.
+    let _ = std::fs::remove_file(options.out.join(crate::shard::SHARD_RECORD));
     let spill_dir = options.out.join(SPILL_DIR);
+    let runs_dir = spill_dir.join("rank-runs");
+    let sorter_memory = options.memory_bytes / 4;
     let step_down = options.maxt == MaxtMode::StepDown;
     let mut pipeline_options = pipeline_options(options, design.samples.len(), b_total);
     pipeline_options.prepare_only = step_down;
-    let sorter = if step_down {
-        Some(RowSorter::new(
-            &spill_dir.join("rank-runs"),
-            design.units(),
-            options.memory_bytes / 4,
-        )?)
-    } else {
-        None
-    };
-    let mut sink = SpillSink {
-        writer: SpillWriter::create(&spill_dir)?,
-        null_max: vec![f64::NEG_INFINITY; b_total],
-        source: if exact {
-            PSource::Exact
-        } else {
-            PSource::Counted
-        },
-        b_total,
-        sizes: spec.sizes,
+
+    let resumed = Checkpoint::load_matching(
+        &options.out,
+        &provenance.fingerprint,
+        options.shard,
+        options.quiet,
+    );
+    let mut checkpoint = resumed.clone().unwrap_or_else(|| Checkpoint {
+        fingerprint: provenance.fingerprint.clone(),
+        shard: options.shard,
+        phase: Phase::Scanning,
+        features_done: shard_range.map_or(0, |r| r.0),
+        records_count: 0,
+        records_len: 0,
+        ids_len: 0,
+        sorter_runs: 0,
         tested: 0,
         untested: Default::default(),
-        sorter,
-        n: design.units(),
-        null_hist: options.pooled_null.then(NullHistogram::empty),
-    };
-    let mut reporter = ProgressReporter::new(
-        info.n_features,
-        options.quiet,
-        if step_down { "standardize" } else { "scan" },
-    );
-    let mut stats = pipeline::run(
-        source,
-        kernel.clone(),
-        &pipeline_options,
-        stop,
-        &mut sink,
-        &mut |done| reporter.update(done),
-    )?;
-    reporter.finish();
-    let SpillSink {
-        writer,
-        mut null_max,
-        mut null_hist,
-        tested,
-        untested,
-        sorter,
-        ..
-    } = sink;
-    writer.finish()?;
-    if let Some(sorter) = sorter {
-        let rank_started = Instant::now();
-        (null_max, null_hist) = run_step_down(
-            kernel,
+        null_max_bits: vec![f64::NEG_INFINITY.to_bits(); b_total],
+        histogram: None,
+    });
+    let mut stats = PipelineStats::default();
+    if checkpoint.phase == Phase::Scanning {
+        let (writer, sorter) = if resumed.is_some() {
+            source.seek(checkpoint.features_done)?;
+            let writer = SpillWriter::resume(
+                &spill_dir,
+                checkpoint.records_len,
+                checkpoint.ids_len,
+                checkpoint.records_count,
+            )?;
+            let sorter = step_down
+                .then(|| {
+                    RowSorter::resume(
+                        &runs_dir,
+                        design.units(),
+                        sorter_memory,
+                        checkpoint.sorter_runs,
+                    )
+                })
+                .transpose()?;
+            (writer, sorter)
+        } else {
+            let writer = SpillWriter::create_resumable(&spill_dir)?;
+            let sorter = step_down
+                .then(|| RowSorter::new(&runs_dir, design.units(), sorter_memory))
+                .transpose()?;
+            (writer, sorter)
+        };
+        let null_hist = match checkpoint.null_histogram() {
+            Some(h) => Some(h),
+            None => options.pooled_null.then(NullHistogram::empty),
+        };
+        let mut sink = SpillSink {
+            writer,
+            null_max: checkpoint.null_max(),
+            source: if exact {
+                PSource::Exact
+            } else {
+                PSource::Counted
+            },
+            b_total,
+            sizes: spec.sizes,
+            tested: checkpoint.tested,
+            untested: checkpoint.untested.clone(),
             sorter,
+            n: design.units(),
+            null_hist,
+            checkpoint: checkpoint.clone(),
+            schedule: crate::resume::Schedule::new(options.checkpoint_seconds),
+            out: options.out.clone(),
+        };
+        let total = shard_range.map_or(info.n_features, |(a, b)| b - a);
+        let done_before = checkpoint.records_count;
+        let mut reporter = ProgressReporter::new(
+            total,
+            options.quiet,
+            if step_down { "standardize" } else { "scan" },
+        );
+        stats = pipeline::run(
+            source,
+            kernel.clone(),
+            &pipeline_options,
+            stop,
+            &mut sink,
+            &mut |done| reporter.update(done_before + done),
+        )?;
+        reporter.finish();
+        // Saved before the spill files are renamed into place, so that a
+        // restart finds them under one name or the other.
+        checkpoint = sink.commit(Phase::Sorted, shard_range.map_or(info.n_features, |r| r.1))?;
+        checkpoint.save(&options.out)?;
+        sink.writer.finish()?;
+    }
+    SpillWriter::finish_committed(
+        &spill_dir,
+        checkpoint.records_len,
+        checkpoint.ids_len,
+        checkpoint.records_count,
+    )?;
+    stats.features = checkpoint.records_count;
+    let tested = checkpoint.tested;
+    let untested: Vec<(String, u64)> = checkpoint
+        .untested
+        .iter()
+        .map(|(s, n)| (s.clone(), *n))
+        .collect();
+    let sorted_runs = |checkpoint: &Checkpoint| -> Result<Option<RowSorter>> {
+        step_down
+            .then(|| {
+                RowSorter::resume(
+                    &runs_dir,
+                    design.units(),
+                    sorter_memory,
+                    checkpoint.sorter_runs,
+                )
+            })
+            .transpose()
+    };
+    if let Some(range) = shard_range {
+        let record = crate::shard::ShardRecord {
+            shard: options
+                .shard
+                .unwrap_or(crate::shard::ShardSpec { index: 1, count: 1 }),
+            range,
+            n_features: info.n_features,
+            tested,
+            untested,
+            relabelings: b_total,
+            exact,
+            design: design.clone(),
+            matrix_format: info.format,
+            sample_columns: info.sample_columns.clone(),
+            options: options.clone(),
+            provenance,
+            seconds: 0.0,
+            pipeline: crate::shard::ShardTiming {
+                chunks: stats.chunks,
+                read_seconds: stats.read_seconds,
+                kernel_seconds: stats.kernel_seconds,
+                wall_seconds: stats.wall_seconds,
+            },
+        };
+        let record = finish_shard(
+            kernel,
+            sorted_runs(&checkpoint)?,
             &pipeline_options,
             &spill_dir,
-            tested,
-            stats.features,
-            options,
+            checkpoint.null_max(),
+            checkpoint.null_histogram(),
+            record,
+            started,
             stop,
         )?;
+        Checkpoint::remove(&options.out);
+        let _ = std::fs::remove_dir_all(&runs_dir);
+        return Ok(ScanOutcome::Shard(Box::new(record)));
+    }
+    let rank_file = spill_dir.join("rank.bin");
+    if step_down {
+        let rank_started = Instant::now();
+        if checkpoint.phase == Phase::Sorted {
+            let sorter = sorted_runs(&checkpoint)?
+                .ok_or_else(|| RiffleError::Internal("no sorter in step-down mode".into()))?;
+            let mut reporter = ProgressReporter::new(tested, options.quiet, "relabel");
+            let (null_max, histogram) = rank_pass(
+                kernel,
+                sorter.finish()?,
+                pipeline_options.threads,
+                pipeline_options.chunk_rows,
+                &rank_file,
+                stop,
+                &mut |done| reporter.update(done),
+            )?;
+            reporter.finish();
+            checkpoint.phase = Phase::Ranked;
+            checkpoint.set_null_max(&null_max);
+            checkpoint.set_histogram(histogram.as_ref());
+            checkpoint.save(&options.out)?;
+            let _ = std::fs::remove_dir_all(&runs_dir);
+        }
+        // An interrupted rewrite is redone (it is idempotent); a finished
+        // one removed the rank file last.
+        if rank_file.is_file() {
+            apply_step_down(
+                &rank_file,
+                &spill_dir,
+                b_total,
+                stats.features,
+                options.memory_bytes,
+            )?;
+        }
         stats.wall_seconds += rank_started.elapsed().as_secs_f64();
     }
-    if stop.load(std::sync::atomic::Ordering::Relaxed) {
-        return Err(RiffleError::Interrupted);
-    }
+    let null_max = checkpoint.null_max();
+    let null_hist = checkpoint.null_histogram();
     crate::maxt::write_null_max(&spill_dir, &null_max)?;
     if let Some(hist) = &null_hist {
         crate::maxt::write_null_histogram(&spill_dir, hist)?;
     }
     let pooled = null_hist.map(|h| h.into_upper_tail());
+    if stop.load(std::sync::atomic::Ordering::Relaxed) {
+        return Err(RiffleError::Interrupted);
+    }
 
     let finalized = finalize(options, &spill_dir, &null_max, pooled.as_ref())?;
     let seconds = started.elapsed().as_secs_f64();
     let summary = ScanSummary {
         features: stats.features,
         tested,
-        untested: untested.iter().map(|(s, n)| (s.to_string(), *n)).collect(),
+        untested,
         relabelings: b_total,
         exact,
         n_a: spec.sizes.n_a,
@@ -348,7 +570,17 @@ fn scan_into_out_dir(
         feature_relabelings_per_second: tested as f64 * b_total as f64
             / stats.wall_seconds.max(1e-9),
     };
-    write_run_record(options, &info, design, &stats, &finalized, &summary)?;
+    write_run_record(
+        options,
+        &info,
+        design,
+        &stats,
+        &finalized,
+        &summary,
+        &provenance,
+        serde_json::Value::Null,
+    )?;
+    Checkpoint::remove(&options.out);
     if options.report {
         // The results are complete and in place: a report that cannot be
         // drawn is worth a warning, not a failed run.
@@ -358,7 +590,59 @@ fn scan_into_out_dir(
             eprintln!("riffle: warning: the report was not written: {e}");
         }
     }
-    Ok(summary)
+    Ok(ScanOutcome::Finished(summary))
+}
+
+/// A shard's end: in step-down mode the rank pass over the shard's own
+/// features, keeping what the merge needs; then the per-relabelling maxima,
+/// the histogram and, last, `shard.json`.
+#[allow(clippy::too_many_arguments)]
+fn finish_shard(
+    kernel: Arc<Kernel>,
+    sorter: Option<RowSorter>,
+    pipeline_options: &PipelineOptions,
+    spill_dir: &Path,
+    mut null_max: Vec<f64>,
+    mut null_hist: Option<NullHistogram>,
+    mut record: crate::shard::ShardRecord,
+    started: Instant,
+    stop: &AtomicBool,
+) -> Result<crate::shard::ShardRecord> {
+    if let Some(sorter) = sorter {
+        let rank_started = Instant::now();
+        let rank_file = spill_dir.join("rank.bin");
+        let keys_file = spill_dir.join(crate::shard::RANK_KEYS_FILE);
+        let keys_temp = spill::temp_name(&keys_file);
+        let mut reporter = ProgressReporter::new(record.tested, record.options.quiet, "relabel");
+        let output = crate::stepdown::rank_pass_with(
+            kernel,
+            sorter.finish()?,
+            pipeline_options.threads,
+            pipeline_options.chunk_rows,
+            &rank_file,
+            Some(&keys_temp),
+            stop,
+            &mut |done| reporter.update(done),
+        )?;
+        reporter.finish();
+        let _ = std::fs::remove_file(&rank_file);
+        std::fs::rename(&keys_temp, &keys_file).at(&keys_file)?;
+        crate::shard::write_step_functions(
+            &spill_dir.join(crate::shard::STEP_FUNCTIONS_FILE),
+            &output.step_functions.unwrap_or_default(),
+        )?;
+        null_max = output.null_max;
+        null_hist = output.histogram;
+        record.pipeline.wall_seconds += rank_started.elapsed().as_secs_f64();
+    }
+    crate::maxt::write_null_max(spill_dir, &null_max)?;
+    if let Some(hist) = &null_hist {
+        crate::maxt::write_null_histogram(spill_dir, hist)?;
+    }
+    record.seconds = started.elapsed().as_secs_f64();
+    let out_dir = spill_dir.parent().unwrap_or(spill_dir);
+    record.write(out_dir)?;
+    Ok(record)
 }
 
 /// Options that name design columns the chosen test does not use.
@@ -486,6 +770,11 @@ fn validate(options: &ScanOptions) -> Result<()> {
     if options.chunk_rows == Some(0) {
         return Err(RiffleError::options("--chunk-rows must be at least 1"));
     }
+    if !(options.checkpoint_seconds.is_finite() && options.checkpoint_seconds >= 0.0) {
+        return Err(RiffleError::options(
+            "--checkpoint-seconds must be a number of seconds, 0 or more",
+        ));
+    }
     if options.memory_bytes < 16 << 20 {
         return Err(RiffleError::options("--memory must be at least 16M"));
     }
@@ -529,7 +818,35 @@ struct SpillSink {
     b_total: usize,
     sizes: Sizes,
     tested: u64,
-    untested: std::collections::BTreeMap<&'static str, u64>,
+    untested: std::collections::BTreeMap<String, u64>,
+    /// The last checkpoint written, updated at each commit.
+    checkpoint: Checkpoint,
+    schedule: crate::resume::Schedule,
+    out: PathBuf,
+}
+
+impl SpillSink {
+    /// Makes the spill and the sorted runs durable and returns the
+    /// checkpoint describing them (not yet saved).
+    fn commit(&mut self, phase: Phase, features_done: u64) -> Result<Checkpoint> {
+        let (records_len, ids_len, count) = self.writer.commit()?;
+        let runs = match self.sorter.as_mut() {
+            Some(sorter) => sorter.commit()?,
+            None => 0,
+        };
+        let c = &mut self.checkpoint;
+        c.phase = phase;
+        c.features_done = features_done;
+        c.records_count = count;
+        c.records_len = records_len;
+        c.ids_len = ids_len;
+        c.sorter_runs = runs;
+        c.tested = self.tested;
+        c.untested = self.untested.clone();
+        c.set_null_max(&self.null_max);
+        c.set_histogram(self.null_hist.as_ref());
+        Ok(c.clone())
+    }
 }
 
 impl ChunkSink for SpillSink {
@@ -554,7 +871,10 @@ impl ChunkSink for SpillSink {
                     sorter.push(p.kernel_obs, chunk.first_index + k as u64, row)?;
                 }
             } else {
-                *self.untested.entry(p.status.reason()).or_default() += 1;
+                *self
+                    .untested
+                    .entry(p.status.reason().to_string())
+                    .or_default() += 1;
             }
             let record = Record {
                 effect: p.effect,
@@ -576,53 +896,39 @@ impl ChunkSink for SpillSink {
             };
             self.writer.push(id, &record)?;
         }
+        if self.schedule.due() {
+            let next = chunk.first_index + chunk.ids.len() as u64;
+            self.commit(Phase::Scanning, next)?.save(&self.out)?;
+        }
         Ok(())
     }
 }
 
-/// The rank pass, the step-down reverse pass, and the spill rewrite that
-/// puts each feature's exceedance count, p_perm and p_maxt into its record.
-#[allow(clippy::too_many_arguments)]
-fn run_step_down(
-    kernel: Arc<Kernel>,
-    sorter: RowSorter,
-    pipeline_options: &PipelineOptions,
+/// The reverse pass over a rank file of (index, exceed, reached) records in
+/// ascending rank order, and the spill rewrite that puts each tested
+/// feature's exceedance count, p_perm and p_maxt into its record. Removes
+/// the rank file.
+pub(crate) fn apply_step_down(
+    rank_file: &Path,
     spill_dir: &Path,
-    tested: u64,
+    b_total: usize,
     features: u64,
-    options: &ScanOptions,
-    stop: &AtomicBool,
-) -> Result<(Vec<f64>, Option<NullHistogram>)> {
-    let b_total = kernel.relabelings().count;
-    let sorted = sorter.finish()?;
-    let rank_file = spill_dir.join("rank.bin");
-    let mut reporter = ProgressReporter::new(tested, options.quiet, "relabel");
-    let (null_max, histogram) = rank_pass(
-        kernel,
-        sorted,
-        pipeline_options.threads,
-        pipeline_options.chunk_rows,
-        &rank_file,
-        stop,
-        &mut |done| reporter.update(done),
-    )?;
-    reporter.finish();
-    let _ = std::fs::remove_dir(spill_dir.join("rank-runs"));
+    memory_bytes: u64,
+) -> Result<()> {
     let dense = spill_dir.join("stepdown.bin");
     let mut writer = crate::columns::ColumnFileWriter::create(&dense, 2)?;
     reverse_and_scatter(
-        &rank_file,
+        rank_file,
         spill_dir,
         b_total,
         features,
-        options.memory_bytes / 4,
+        memory_bytes / 4,
         &mut |_, result| match result {
             Some(r) => writer.push(&[r.exceed as f64, r.p_maxt]),
             None => writer.push(&[0.0, f64::NAN]),
         },
     )?;
     writer.finish()?;
-    let _ = std::fs::remove_file(&rank_file);
     let mut reader = crate::columns::ColumnFileReader::open(&dense, 2)?;
     let mut row = [0.0f64; 2];
     let denominator = (b_total + 1) as f64;
@@ -636,7 +942,8 @@ fn run_step_down(
         Ok(())
     })?;
     let _ = std::fs::remove_file(&dense);
-    Ok((null_max, histogram))
+    let _ = std::fs::remove_file(rank_file);
+    Ok(())
 }
 
 /// Which p-value of a spill record to adjust.
@@ -680,15 +987,15 @@ pub const METHODS: [Method; 6] = [
     Method::Bonferroni,
 ];
 
-struct Finalized {
-    perm: AdjustSummary,
+pub(crate) struct Finalized {
+    pub(crate) perm: AdjustSummary,
     param: Option<AdjustSummary>,
     pooled: Option<AdjustSummary>,
-    fwer_hits_05: u64,
-    results_path: PathBuf,
+    pub(crate) fwer_hits_05: u64,
+    pub(crate) results_path: PathBuf,
 }
 
-fn hits(summary: &AdjustSummary, method: Method) -> [u64; 3] {
+pub(crate) fn hits(summary: &AdjustSummary, method: Method) -> [u64; 3] {
     summary
         .rejections
         .iter()
@@ -699,7 +1006,7 @@ fn hits(summary: &AdjustSummary, method: Method) -> [u64; 3] {
 
 /// Multiple testing over the spill and the results table, in feature order
 /// and bounded memory.
-fn finalize(
+pub(crate) fn finalize(
     options: &ScanOptions,
     spill_dir: &Path,
     null_max: &[f64],
@@ -881,13 +1188,17 @@ fn finalize(
     })
 }
 
-fn write_run_record(
+/// `run.json`; `extra` (when not null) goes in as `shards` (a merge's).
+#[allow(clippy::too_many_arguments)]
+pub(crate) fn write_run_record(
     options: &ScanOptions,
     info: &MatrixInfo,
     design: &StudyDesign,
     stats: &PipelineStats,
     finalized: &Finalized,
     summary: &ScanSummary,
+    provenance: &crate::provenance::Provenance,
+    extra: serde_json::Value,
 ) -> Result<()> {
     let file_size = |p: &Path| std::fs::metadata(p).map(|m| m.len()).unwrap_or(0);
     let summary_json = |s: &AdjustSummary| {
@@ -901,7 +1212,8 @@ fn write_run_record(
                 .collect::<serde_json::Map<_, _>>(),
         })
     };
-    let record = serde_json::json!({
+    let mut record = serde_json::json!({
+        "complete": true,
         "riffle_version": env!("CARGO_PKG_VERSION"),
         "command": std::env::args().collect::<Vec<_>>(),
         "options": options,
@@ -929,7 +1241,12 @@ fn write_run_record(
                    "threads": options.threads, "cores": default_threads(), "chunks": stats.chunks,
                    "feature_relabelings_per_second": summary.feature_relabelings_per_second},
         "caution": crate::CAUTION,
+        "provenance": provenance,
+        "results": crate::provenance::results_entry(&finalized.results_path)?,
     });
+    if !extra.is_null() {
+        record["shards"] = extra;
+    }
     let path = options.out.join(RUN_RECORD);
     let temp = spill::temp_name(&path);
     let text = serde_json::to_string_pretty(&record)

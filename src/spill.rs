@@ -114,11 +114,24 @@ struct CheckedWriter {
     out: BufWriter<File>,
     crc: crc32fast::Hasher,
     count: u64,
+    /// Bytes written so far, header included.
+    len: u64,
+}
+
+/// The fixed temporary name of a resumable spill file.
+fn stable_temp_name(path: &Path) -> PathBuf {
+    let mut name = path.file_name().unwrap_or_default().to_os_string();
+    name.push(".partial");
+    path.with_file_name(name)
 }
 
 impl CheckedWriter {
     fn create(final_path: PathBuf) -> Result<Self> {
         let temp_path = temp_name(&final_path);
+        Self::create_at(final_path, temp_path)
+    }
+
+    fn create_at(final_path: PathBuf, temp_path: PathBuf) -> Result<Self> {
         let file = File::create(&temp_path).at(&temp_path)?;
         let mut out = BufWriter::with_capacity(1 << 20, file);
         let mut header = [0u8; HEADER_LEN as usize];
@@ -132,11 +145,65 @@ impl CheckedWriter {
             out,
             crc: crc32fast::Hasher::new(),
             count: 0,
+            len: HEADER_LEN,
         })
+    }
+
+    /// Reopens a resumable file cut back to `committed_len` bytes; the
+    /// checksum state cannot be stored, so it is recomputed over the kept
+    /// body.
+    fn resume(final_path: PathBuf, committed_len: u64, count: u64) -> Result<Self> {
+        let temp_path = stable_temp_name(&final_path);
+        let bad = |msg: String| RiffleError::bad_input(&temp_path, "checkpoint", msg);
+        let mut file = std::fs::OpenOptions::new()
+            .read(true)
+            .write(true)
+            .open(&temp_path)
+            .at(&temp_path)?;
+        let len = file.metadata().at(&temp_path)?.len();
+        if len < committed_len || committed_len < HEADER_LEN {
+            return Err(bad(format!(
+                "{len} bytes, but the checkpoint committed {committed_len}"
+            )));
+        }
+        file.set_len(committed_len).at(&temp_path)?;
+        let mut header = [0u8; HEADER_LEN as usize];
+        file.read_exact(&mut header).at(&temp_path)?;
+        if &header[0..8] != MAGIC {
+            return Err(bad("not a riffle spill file (wrong magic bytes)".into()));
+        }
+        let mut crc = crc32fast::Hasher::new();
+        let mut reader =
+            BufReader::with_capacity(1 << 20, &mut file).take(committed_len - HEADER_LEN);
+        let mut buf = vec![0u8; 1 << 20];
+        loop {
+            let k = reader.read(&mut buf).at(&temp_path)?;
+            if k == 0 {
+                break;
+            }
+            crc.update(&buf[..k]);
+        }
+        file.seek(SeekFrom::Start(committed_len)).at(&temp_path)?;
+        Ok(CheckedWriter {
+            final_path,
+            temp_path,
+            out: BufWriter::with_capacity(1 << 20, file),
+            crc,
+            count,
+            len: committed_len,
+        })
+    }
+
+    /// Flushes and syncs what was written; returns the committed length.
+    fn commit(&mut self) -> Result<u64> {
+        self.out.flush().at(&self.temp_path)?;
+        self.out.get_ref().sync_data().at(&self.temp_path)?;
+        Ok(self.len)
     }
 
     fn write(&mut self, bytes: &[u8]) -> Result<()> {
         self.crc.update(bytes);
+        self.len += bytes.len() as u64;
         self.out.write_all(bytes).at(&self.temp_path)
     }
 
@@ -175,6 +242,61 @@ impl SpillWriter {
             records: CheckedWriter::create(dir.join(RECORDS_FILE))?,
             ids: CheckedWriter::create(dir.join(IDS_FILE))?,
         })
+    }
+
+    /// Like `create`, under fixed temporary names that a later process can
+    /// find again (see `crate::resume`).
+    pub fn create_resumable(dir: &Path) -> Result<Self> {
+        std::fs::create_dir_all(dir).at(dir)?;
+        let file = |name: &str| {
+            let path = dir.join(name);
+            CheckedWriter::create_at(path.clone(), stable_temp_name(&path))
+        };
+        Ok(SpillWriter {
+            records: file(RECORDS_FILE)?,
+            ids: file(IDS_FILE)?,
+        })
+    }
+
+    /// Continues a resumable spill from a commit (`commit`'s lengths).
+    pub fn resume(dir: &Path, records_len: u64, ids_len: u64, count: u64) -> Result<Self> {
+        Ok(SpillWriter {
+            records: CheckedWriter::resume(dir.join(RECORDS_FILE), records_len, count)?,
+            ids: CheckedWriter::resume(dir.join(IDS_FILE), ids_len, count)?,
+        })
+    }
+
+    /// Makes everything pushed so far durable; returns (records bytes, ids
+    /// bytes, count) for `resume`.
+    pub fn commit(&mut self) -> Result<(u64, u64, u64)> {
+        Ok((
+            self.records.commit()?,
+            self.ids.commit()?,
+            self.records.count,
+        ))
+    }
+
+    pub fn count(&self) -> u64 {
+        self.records.count
+    }
+
+    /// Completes a resumable spill whose last commit covered everything:
+    /// each file still under its temporary name gets its trailer and is
+    /// renamed; one already renamed is left as it is.
+    pub fn finish_committed(dir: &Path, records_len: u64, ids_len: u64, count: u64) -> Result<()> {
+        for (name, len) in [(RECORDS_FILE, records_len), (IDS_FILE, ids_len)] {
+            let path = dir.join(name);
+            if stable_temp_name(&path).is_file() {
+                CheckedWriter::resume(path, len, count)?.finish()?;
+            } else if !path.is_file() {
+                return Err(RiffleError::bad_input(
+                    &path,
+                    "checkpoint",
+                    "the spill file named by the checkpoint is missing",
+                ));
+            }
+        }
+        Ok(())
     }
 
     pub fn push(&mut self, id: &str, record: &Record) -> Result<()> {

@@ -48,17 +48,46 @@ pub struct RowSorter {
 
 impl RowSorter {
     pub fn new(dir: &Path, n: usize, memory_bytes: u64) -> Result<Self> {
+        Self::resume(dir, n, memory_bytes, 0)
+    }
+
+    /// A sorter whose first `runs` run files (from `commit`) are kept and
+    /// any later ones, left by an interrupted process, removed.
+    pub fn resume(dir: &Path, n: usize, memory_bytes: u64, runs: usize) -> Result<Self> {
         std::fs::create_dir_all(dir).at(dir)?;
         let per_row = (16 + 8 * n) as u64;
         let capacity_rows = (memory_bytes / per_row).clamp(64, 1 << 24) as usize;
+        let paths: Vec<PathBuf> = (0..runs).map(|r| run_path(dir, r)).collect();
+        for p in &paths {
+            if !p.is_file() {
+                return Err(RiffleError::bad_input(
+                    p,
+                    "checkpoint",
+                    "a sorted run named by the checkpoint is missing",
+                ));
+            }
+        }
+        for entry in std::fs::read_dir(dir).at(dir)?.flatten() {
+            let path = entry.path();
+            if path.extension().is_some_and(|e| e == "bin") && !paths.contains(&path) {
+                let _ = std::fs::remove_file(&path);
+            }
+        }
         Ok(RowSorter {
             dir: dir.to_path_buf(),
             n,
             capacity_rows,
             keys: Vec::new(),
             rows: Vec::new(),
-            runs: Vec::new(),
+            runs: paths,
         })
+    }
+
+    /// Writes the rows held in memory as a run and makes every run durable;
+    /// returns the number of runs (for `resume`).
+    pub fn commit(&mut self) -> Result<usize> {
+        self.write_run()?;
+        Ok(self.runs.len())
     }
 
     pub fn push(&mut self, key: f64, index: u64, row: &[f64]) -> Result<()> {
@@ -76,7 +105,7 @@ impl RowSorter {
         }
         let mut order: Vec<usize> = (0..self.keys.len()).collect();
         order.sort_unstable_by(|&a, &b| compare_keys(self.keys[a], self.keys[b]));
-        let path = self.dir.join(format!("rows-{:05}.bin", self.runs.len()));
+        let path = run_path(&self.dir, self.runs.len());
         let mut out = BufWriter::with_capacity(1 << 20, File::create(&path).at(&path)?);
         let n = self.n;
         for &i in &order {
@@ -87,7 +116,10 @@ impl RowSorter {
                 out.write_all(&v.to_le_bytes()).at(&path)?;
             }
         }
-        out.flush().at(&path)?;
+        let file = out
+            .into_inner()
+            .map_err(|e| RiffleError::io(&path, e.into_error()))?;
+        file.sync_all().at(&path)?;
         self.runs.push(path);
         self.keys.clear();
         self.rows.clear();
@@ -119,9 +151,12 @@ impl RowSorter {
             n: self.n,
             runs,
             heap,
-            paths: self.runs.clone(),
         })
     }
+}
+
+fn run_path(dir: &Path, run: usize) -> PathBuf {
+    dir.join(format!("rows-{run:05}.bin"))
 }
 
 fn compare_keys(a: (f64, u64), b: (f64, u64)) -> CmpOrdering {
@@ -176,11 +211,12 @@ impl Ord for HeapEntry {
 }
 
 /// The merged runs, read in ascending order.
+/// The run files stay until the caller removes them (after the rank pass
+/// has been committed), so an interrupted rank pass can start again.
 pub struct SortedRows {
     n: usize,
     runs: Vec<RunReader>,
     heap: BinaryHeap<HeapEntry>,
-    paths: Vec<PathBuf>,
 }
 
 /// Consecutive rows of the rank order.
@@ -212,12 +248,6 @@ impl SortedRows {
         }
         Ok((!chunk.keys.is_empty()).then_some(chunk))
     }
-
-    fn remove_files(&self) {
-        for p in &self.paths {
-            let _ = std::fs::remove_file(p);
-        }
-    }
 }
 
 /// Rows per kernel call of the rank pass: a multiple of the kernel's row
@@ -233,13 +263,52 @@ pub const RANK_RECORD: usize = 24;
 /// the pooled null histogram.
 pub fn rank_pass(
     kernel: Arc<Kernel>,
-    mut sorted: SortedRows,
+    sorted: SortedRows,
     threads: usize,
     chunk_rows: usize,
     rank_file: &Path,
     stop: &AtomicBool,
     progress: &mut dyn FnMut(u64),
 ) -> Result<(Vec<f64>, Option<NullHistogram>)> {
+    let output = rank_pass_with(
+        kernel, sorted, threads, chunk_rows, rank_file, None, stop, progress,
+    )?;
+    Ok((output.null_max, output.histogram))
+}
+
+/// A rank-pass worker's maxima, histogram counts and step functions.
+type WorkerResult = (Vec<f64>, Vec<u64>, Vec<Vec<(f64, f64)>>);
+/// A chunk's sequence number, feature indices and (when recording) keys.
+type ChunkOrder = (u64, Vec<u64>, Vec<f64>);
+
+/// What the rank pass leaves besides the rank file.
+pub struct RankPassOutput {
+    pub null_max: Vec<f64>,
+    pub histogram: Option<NullHistogram>,
+    /// With a shard keys file: per relabelling, the running-maximum step
+    /// function (see `RankState::record_maxima`).
+    pub step_functions: Option<Vec<Vec<(f64, f64)>>>,
+}
+
+/// The rank pass; with `shard_keys`, also records the step functions and
+/// writes (statistic, index, exceed) in rank order to that file, which is
+/// what a later merge of shards needs.
+#[allow(clippy::too_many_arguments)]
+pub fn rank_pass_with(
+    kernel: Arc<Kernel>,
+    mut sorted: SortedRows,
+    threads: usize,
+    chunk_rows: usize,
+    rank_file: &Path,
+    shard_keys: Option<&Path>,
+    stop: &AtomicBool,
+    progress: &mut dyn FnMut(u64),
+) -> Result<RankPassOutput> {
+    let recording = shard_keys.is_some();
+    let mut keys_out = match shard_keys {
+        Some(p) => Some(BufWriter::with_capacity(1 << 20, File::create(p).at(p)?)),
+        None => None,
+    };
     let b_total = kernel.relabelings().count;
     let workers = threads.clamp(1, b_total.max(1));
     let ranges: Vec<(usize, usize)> = (0..workers)
@@ -252,7 +321,7 @@ pub fn rank_pass(
     let mut out = BufWriter::with_capacity(1 << 20, File::create(rank_file).at(rank_file)?);
     let failed = AtomicBool::new(false);
 
-    let result = std::thread::scope(|scope| -> Result<(Vec<f64>, Option<NullHistogram>)> {
+    let result = std::thread::scope(|scope| -> Result<RankPassOutput> {
         let (part_tx, part_rx) = bounded::<(u64, usize, Vec<u64>, Vec<u64>)>(2 * workers + 2);
         let mut chunk_txs = Vec::new();
         let mut handles = Vec::new();
@@ -262,8 +331,11 @@ pub fn rank_pass(
             let part_tx = part_tx.clone();
             let kernel = kernel.clone();
             let failed = &failed;
-            handles.push(scope.spawn(move || -> (Vec<f64>, Vec<u64>) {
+            handles.push(scope.spawn(move || -> WorkerResult {
                 let mut state = RankState::new(col0, cols, kernel.pooled_null());
+                if recording {
+                    state = state.record_maxima();
+                }
                 let mut scratch = KernelScratch::default();
                 'chunks: while let Ok((seq, chunk)) = rx.recv() {
                     if failed.load(Ordering::Relaxed) || stop.load(Ordering::Relaxed) {
@@ -295,13 +367,13 @@ pub fn rank_pass(
                         break;
                     }
                 }
-                (state.maxima, state.histogram)
+                (state.maxima, state.histogram, state.records)
             }));
         }
         drop(part_tx);
 
         // Reader: merge the runs and hand every chunk to every worker.
-        let reader = scope.spawn(move || -> Result<Vec<(u64, Vec<u64>)>> {
+        let reader = scope.spawn(move || -> Result<Vec<ChunkOrder>> {
             let mut seq = 0u64;
             let mut order = Vec::new();
             while let Some(chunk) = sorted.next_chunk(chunk_rows)? {
@@ -309,7 +381,12 @@ pub fn rank_pass(
                     break;
                 }
                 let chunk = Arc::new(chunk);
-                order.push((seq, chunk.indices.clone()));
+                let keys = if recording {
+                    chunk.keys.clone()
+                } else {
+                    Vec::new()
+                };
+                order.push((seq, chunk.indices.clone(), keys));
                 for tx in &chunk_txs {
                     if tx.send((seq, chunk.clone())).is_err() {
                         return Err(RiffleError::Internal("rank pass worker stopped".into()));
@@ -317,7 +394,6 @@ pub fn rank_pass(
                 }
                 seq += 1;
             }
-            sorted.remove_files();
             Ok(order)
         });
 
@@ -348,11 +424,13 @@ pub fn rank_pass(
             .map_err(|_| RiffleError::Internal("rank pass reader panicked".into()))??;
         let mut null_max = Vec::with_capacity(b_total);
         let mut histogram = kernel.pooled_null().then(NullHistogram::empty);
+        let mut step_functions = Vec::new();
         for h in handles {
-            let (maxima, counts) = h
+            let (maxima, counts, records) = h
                 .join()
                 .map_err(|_| RiffleError::Internal("rank pass worker panicked".into()))?;
             null_max.extend(maxima);
+            step_functions.extend(records);
             if let Some(hist) = histogram.as_mut() {
                 hist.add(&counts);
             }
@@ -362,12 +440,19 @@ pub fn rank_pass(
         }
         parts_done.sort_by_key(|p| p.0);
         let mut done = 0u64;
-        for ((seq, indices), (seq2, exceed, reached)) in order.iter().zip(&parts_done) {
+        for ((seq, indices, keys), (seq2, exceed, reached)) in order.iter().zip(&parts_done) {
             debug_assert_eq!(seq, seq2);
             for k in 0..indices.len() {
                 out.write_all(&indices[k].to_le_bytes()).at(rank_file)?;
                 out.write_all(&exceed[k].to_le_bytes()).at(rank_file)?;
                 out.write_all(&reached[k].to_le_bytes()).at(rank_file)?;
+            }
+            if let (Some(w), Some(path)) = (keys_out.as_mut(), shard_keys) {
+                for k in 0..indices.len() {
+                    w.write_all(&keys[k].to_le_bytes()).at(path)?;
+                    w.write_all(&indices[k].to_le_bytes()).at(path)?;
+                    w.write_all(&exceed[k].to_le_bytes()).at(path)?;
+                }
             }
             done += indices.len() as u64;
             progress(done);
@@ -376,9 +461,22 @@ pub fn rank_pass(
             failed.store(true, Ordering::Relaxed);
             return Err(RiffleError::Internal("rank pass lost chunks".into()));
         }
-        Ok((null_max, histogram))
+        Ok(RankPassOutput {
+            null_max,
+            histogram,
+            step_functions: recording.then_some(step_functions),
+        })
     })?;
-    out.flush().at(rank_file)?;
+    let file = out
+        .into_inner()
+        .map_err(|e| RiffleError::io(rank_file, e.into_error()))?;
+    file.sync_all().at(rank_file)?;
+    if let (Some(w), Some(path)) = (keys_out, shard_keys) {
+        let file = w
+            .into_inner()
+            .map_err(|e| RiffleError::io(path, e.into_error()))?;
+        file.sync_all().at(path)?;
+    }
     Ok(result)
 }
 

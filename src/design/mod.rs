@@ -16,7 +16,7 @@ use crate::error::{Result, RiffleError};
 
 /// A two-group comparison: group A (label 0) against group B (label 1).
 /// Effects and statistics are B minus A.
-#[derive(Debug, Clone, serde::Serialize)]
+#[derive(Debug, Clone, serde::Serialize, serde::Deserialize)]
 pub struct TwoGroupDesign {
     pub group_column: String,
     pub level_a: String,

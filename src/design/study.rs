@@ -11,7 +11,7 @@ use crate::stats::{mid_ranks, DesignKind};
 
 /// Sample-sheet columns that define a design (all optional but the one the
 /// test needs).
-#[derive(Debug, Clone, Default, serde::Serialize)]
+#[derive(Debug, Clone, Default, serde::Serialize, serde::Deserialize)]
 pub struct DesignColumns {
     pub group: Option<String>,
     pub levels: Option<Vec<String>>,
@@ -20,12 +20,12 @@ pub struct DesignColumns {
     pub strata: Option<String>,
     /// Covariates: the test becomes a linear model per feature, permuted
     /// by Freedman–Lane.
+    #[serde(default)]
     pub covariates: Vec<String>,
 }
 
-#[derive(Debug, Clone, serde::Serialize)]
+#[derive(Debug, Clone, serde::Serialize, serde::Deserialize)]
 pub struct StudyDesign {
-    #[serde(skip)]
     pub kind: DesignKind,
     pub columns: DesignColumns,
     /// Matrix columns to read, in order. Paired: the A sample of every pair,

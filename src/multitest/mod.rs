@@ -74,7 +74,7 @@ impl Method {
 }
 
 /// How Storey's lambda is chosen.
-#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize)]
+#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize, serde::Deserialize)]
 pub enum LambdaChoice {
     /// pi0 = #{p > lambda} / ((1 - lambda) m), lambda in [0, 1).
     Fixed(f64),

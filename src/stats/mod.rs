@@ -42,7 +42,8 @@ pub enum TestKind {
 }
 
 /// What kind of sample sheet information a test needs.
-#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
+#[serde(rename_all = "kebab-case")]
 pub enum DesignKind {
     Groups,
     Trait,
