@@ -27,9 +27,10 @@ pub struct Cli {
 
 #[derive(Subcommand, Debug)]
 pub enum Command {
-    /// Test every feature of a matrix between two groups of samples.
+    /// Test every feature of a matrix: two or more groups, a trait, pairs,
+    /// strata, covariates.
     #[command(args_override_self = true)]
-    Scan(ScanArgs),
+    Scan(Box<ScanArgs>),
     /// Combine shard folders (from `scan --shard`) into the whole scan's results.
     Merge(MergeArgs),
     /// Run the bundled demo end to end and print a short summary.
