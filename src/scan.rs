@@ -922,7 +922,8 @@ pub(crate) fn apply_step_down(
         spill_dir,
         b_total,
         features,
-        memory_bytes / 4,
+        // Scatter buckets: a small share, so that memory stays flat in F.
+        memory_bytes / 16,
         &mut |_, result| match result {
             Some(r) => writer.push(&[r.exceed as f64, r.p_maxt]),
             None => writer.push(&[0.0, f64::NAN]),

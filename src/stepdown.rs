@@ -254,6 +254,18 @@ impl SortedRows {
 /// tile, small enough to be done in well under a second.
 const RANK_PIECE_ROWS: usize = 4096;
 
+/// A worker's part of one chunk: (sequence number, exceedance counts,
+/// reached counts, and from the first worker the chunk's ids and keys).
+type Part = (u64, Vec<u64>, Vec<u64>, Option<(Vec<u64>, Vec<f64>)>);
+
+/// A chunk whose parts are being summed.
+struct Pending {
+    parts: usize,
+    exceed: Vec<u64>,
+    reached: Vec<u64>,
+    order: Option<(Vec<u64>, Vec<f64>)>,
+}
+
 /// Per-feature outcome of the rank pass, in rank order.
 pub const RANK_RECORD: usize = 24;
 
@@ -278,8 +290,6 @@ pub fn rank_pass(
 
 /// A rank-pass worker's maxima, histogram counts and step functions.
 type WorkerResult = (Vec<f64>, Vec<u64>, Vec<Vec<(f64, f64)>>);
-/// A chunk's sequence number, feature indices and (when recording) keys.
-type ChunkOrder = (u64, Vec<u64>, Vec<f64>);
 
 /// What the rank pass leaves besides the rank file.
 pub struct RankPassOutput {
@@ -322,7 +332,7 @@ pub fn rank_pass_with(
     let failed = AtomicBool::new(false);
 
     let result = std::thread::scope(|scope| -> Result<RankPassOutput> {
-        let (part_tx, part_rx) = bounded::<(u64, usize, Vec<u64>, Vec<u64>)>(2 * workers + 2);
+        let (part_tx, part_rx) = bounded::<Part>(2 * workers + 2);
         let mut chunk_txs = Vec::new();
         let mut handles = Vec::new();
         for (w, &(col0, cols)) in ranges.iter().enumerate() {
@@ -363,7 +373,17 @@ pub fn rank_pass_with(
                             &mut scratch,
                         );
                     }
-                    if part_tx.send((seq, w, exceed, reached)).is_err() {
+                    // The first worker carries the chunk's ids and keys to the
+                    // collector, which then holds only chunks in flight.
+                    let order = (w == 0).then(|| {
+                        let keys = if recording {
+                            chunk.keys.clone()
+                        } else {
+                            Vec::new()
+                        };
+                        (chunk.indices.clone(), keys)
+                    });
+                    if part_tx.send((seq, exceed, reached, order)).is_err() {
                         break;
                     }
                 }
@@ -373,20 +393,13 @@ pub fn rank_pass_with(
         drop(part_tx);
 
         // Reader: merge the runs and hand every chunk to every worker.
-        let reader = scope.spawn(move || -> Result<Vec<ChunkOrder>> {
+        let reader = scope.spawn(move || -> Result<u64> {
             let mut seq = 0u64;
-            let mut order = Vec::new();
             while let Some(chunk) = sorted.next_chunk(chunk_rows)? {
                 if stop.load(Ordering::Relaxed) {
                     break;
                 }
                 let chunk = Arc::new(chunk);
-                let keys = if recording {
-                    chunk.keys.clone()
-                } else {
-                    Vec::new()
-                };
-                order.push((seq, chunk.indices.clone(), keys));
                 for tx in &chunk_txs {
                     if tx.send((seq, chunk.clone())).is_err() {
                         return Err(RiffleError::Internal("rank pass worker stopped".into()));
@@ -394,32 +407,68 @@ pub fn rank_pass_with(
                 }
                 seq += 1;
             }
-            Ok(order)
+            Ok(seq)
         });
 
-        // Collector: sum the workers' parts of each chunk, in order. Each
-        // worker sends its chunks in order, so a chunk is complete when
-        // every worker has sent its part.
-        let mut pending: std::collections::BTreeMap<u64, (usize, Vec<u64>, Vec<u64>)> =
-            Default::default();
-        let mut parts_done: Vec<(u64, Vec<u64>, Vec<u64>)> = Vec::new();
-        for (seq, _w, exceed, reached) in part_rx.iter() {
-            let entry = pending
-                .entry(seq)
-                .or_insert_with(|| (0, vec![0; exceed.len()], vec![0; reached.len()]));
-            entry.0 += 1;
-            for (a, b) in entry.1.iter_mut().zip(&exceed) {
+        // Collector: sum the workers' parts of each chunk and write the
+        // chunks out in order as soon as they are complete (a chunk is
+        // complete when every worker has sent its part).
+        let mut pending: std::collections::BTreeMap<u64, Pending> = Default::default();
+        let mut next = 0u64;
+        let mut done = 0u64;
+        let mut written: Result<()> = Ok(());
+        for (seq, exceed, reached, order) in part_rx.iter() {
+            let entry = pending.entry(seq).or_insert_with(|| Pending {
+                parts: 0,
+                exceed: vec![0; exceed.len()],
+                reached: vec![0; reached.len()],
+                order: None,
+            });
+            entry.parts += 1;
+            for (a, b) in entry.exceed.iter_mut().zip(&exceed) {
                 *a += b;
             }
-            for (a, b) in entry.2.iter_mut().zip(&reached) {
+            for (a, b) in entry.reached.iter_mut().zip(&reached) {
                 *a += b;
             }
-            if entry.0 == workers {
-                let (_, e, r) = pending.remove(&seq).unwrap();
-                parts_done.push((seq, e, r));
+            if order.is_some() {
+                entry.order = order;
+            }
+            while pending
+                .get(&next)
+                .is_some_and(|p| p.parts == workers && p.order.is_some())
+            {
+                let chunk = pending.remove(&next).unwrap();
+                next += 1;
+                if written.is_err() {
+                    continue;
+                }
+                let (indices, keys) = chunk.order.unwrap();
+                written = (|| -> Result<()> {
+                    for k in 0..indices.len() {
+                        out.write_all(&indices[k].to_le_bytes()).at(rank_file)?;
+                        out.write_all(&chunk.exceed[k].to_le_bytes())
+                            .at(rank_file)?;
+                        out.write_all(&chunk.reached[k].to_le_bytes())
+                            .at(rank_file)?;
+                    }
+                    if let (Some(w), Some(path)) = (keys_out.as_mut(), shard_keys) {
+                        for k in 0..indices.len() {
+                            w.write_all(&keys[k].to_le_bytes()).at(path)?;
+                            w.write_all(&indices[k].to_le_bytes()).at(path)?;
+                            w.write_all(&chunk.exceed[k].to_le_bytes()).at(path)?;
+                        }
+                    }
+                    Ok(())
+                })();
+                if written.is_err() {
+                    failed.store(true, Ordering::Relaxed);
+                }
+                done += indices.len() as u64;
+                progress(done);
             }
         }
-        let order = reader
+        let chunks = reader
             .join()
             .map_err(|_| RiffleError::Internal("rank pass reader panicked".into()))??;
         let mut null_max = Vec::with_capacity(b_total);
@@ -438,27 +487,8 @@ pub fn rank_pass_with(
         if stop.load(Ordering::Relaxed) {
             return Err(RiffleError::Interrupted);
         }
-        parts_done.sort_by_key(|p| p.0);
-        let mut done = 0u64;
-        for ((seq, indices, keys), (seq2, exceed, reached)) in order.iter().zip(&parts_done) {
-            debug_assert_eq!(seq, seq2);
-            for k in 0..indices.len() {
-                out.write_all(&indices[k].to_le_bytes()).at(rank_file)?;
-                out.write_all(&exceed[k].to_le_bytes()).at(rank_file)?;
-                out.write_all(&reached[k].to_le_bytes()).at(rank_file)?;
-            }
-            if let (Some(w), Some(path)) = (keys_out.as_mut(), shard_keys) {
-                for k in 0..indices.len() {
-                    w.write_all(&keys[k].to_le_bytes()).at(path)?;
-                    w.write_all(&indices[k].to_le_bytes()).at(path)?;
-                    w.write_all(&exceed[k].to_le_bytes()).at(path)?;
-                }
-            }
-            done += indices.len() as u64;
-            progress(done);
-        }
-        if order.len() != parts_done.len() {
-            failed.store(true, Ordering::Relaxed);
+        written?;
+        if next != chunks || !pending.is_empty() {
             return Err(RiffleError::Internal("rank pass lost chunks".into()));
         }
         Ok(RankPassOutput {
