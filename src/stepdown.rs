@@ -445,18 +445,18 @@ pub fn rank_pass_with(
                 }
                 let (indices, keys) = chunk.order.unwrap();
                 written = (|| -> Result<()> {
-                    for k in 0..indices.len() {
-                        out.write_all(&indices[k].to_le_bytes()).at(rank_file)?;
-                        out.write_all(&chunk.exceed[k].to_le_bytes())
-                            .at(rank_file)?;
-                        out.write_all(&chunk.reached[k].to_le_bytes())
-                            .at(rank_file)?;
+                    for ((index, exceed), reached) in
+                        indices.iter().zip(&chunk.exceed).zip(&chunk.reached)
+                    {
+                        out.write_all(&index.to_le_bytes()).at(rank_file)?;
+                        out.write_all(&exceed.to_le_bytes()).at(rank_file)?;
+                        out.write_all(&reached.to_le_bytes()).at(rank_file)?;
                     }
                     if let (Some(w), Some(path)) = (keys_out.as_mut(), shard_keys) {
-                        for k in 0..indices.len() {
-                            w.write_all(&keys[k].to_le_bytes()).at(path)?;
-                            w.write_all(&indices[k].to_le_bytes()).at(path)?;
-                            w.write_all(&chunk.exceed[k].to_le_bytes()).at(path)?;
+                        for ((key, index), exceed) in keys.iter().zip(&indices).zip(&chunk.exceed) {
+                            w.write_all(&key.to_le_bytes()).at(path)?;
+                            w.write_all(&index.to_le_bytes()).at(path)?;
+                            w.write_all(&exceed.to_le_bytes()).at(path)?;
                         }
                     }
                     Ok(())
