@@ -114,6 +114,19 @@ pub struct PrepScratch {
     signed: Vec<f64>,
 }
 
+impl PrepScratch {
+    /// Standardizes `raw`, or its mid-ranks for rank tests, into `z`;
+    /// returns sum |z|.
+    fn standardize(&mut self, raw: &[f64], ranks: bool, z: &mut [f64]) -> f64 {
+        if !ranks {
+            return standardize(raw, z);
+        }
+        self.ranks.resize(raw.len(), 0.0);
+        mid_ranks(raw, &mut self.order, &mut self.ranks);
+        standardize(&self.ranks, z)
+    }
+}
+
 impl TestSpec {
     pub fn two_group(test: TestKind, side: Side, sizes: Sizes) -> Self {
         TestSpec {
@@ -473,14 +486,7 @@ impl TestSpec {
         if self.test == TestKind::Anova && no_within_variance(raw, labels) {
             return Prepared::untested(Status::NoWithinVariance, f64::NAN);
         }
-        let source: &[f64] = if self.test == TestKind::Kruskal {
-            scratch.ranks.resize(raw.len(), 0.0);
-            mid_ranks(raw, &mut scratch.order, &mut scratch.ranks);
-            &scratch.ranks
-        } else {
-            raw
-        };
-        let abs_sum = standardize(source, z);
+        let abs_sum = scratch.standardize(raw, self.test == TestKind::Kruskal, z);
         let k = self.group_sizes.len();
         let n = z.len() as f64;
         let mut sums = [0.0f64; MAX_GROUPS];
@@ -507,14 +513,7 @@ impl TestSpec {
         if raw.iter().all(|&v| v == first) {
             return Prepared::untested(Status::Constant, f64::NAN);
         }
-        let source: &[f64] = if self.test == TestKind::Spearman {
-            scratch.ranks.resize(raw.len(), 0.0);
-            mid_ranks(raw, &mut scratch.order, &mut scratch.ranks);
-            &scratch.ranks
-        } else {
-            raw
-        };
-        let abs_sum = standardize(source, z);
+        let abs_sum = scratch.standardize(raw, self.test == TestKind::Spearman, z);
         let n = z.len() as f64;
         let s: f64 = z.iter().zip(&self.trait_weights).map(|(a, b)| a * b).sum();
         let r = (s / (n - 1.0)).clamp(-1.0, 1.0);
