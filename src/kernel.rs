@@ -23,6 +23,8 @@ const F32_UNIT: f64 = 5.960_464_477_539_063e-8;
 /// Everything a worker needs, shared read-only by all workers.
 pub struct Kernel {
     spec: TestSpec,
+    /// 1 / group size, per class (k-group tests).
+    inverse_group_sizes: Vec<f32>,
     /// Whether to count every relabelled statistic into a pooled histogram.
     pooled_null: bool,
     observed: Vec<u8>,
@@ -84,6 +86,7 @@ impl Kernel {
             }
         }
         Kernel {
+            inverse_group_sizes: spec.group_sizes.iter().map(|&g| 1.0 / g as f32).collect(),
             spec,
             pooled_null: false,
             observed,
@@ -340,12 +343,7 @@ impl Kernel {
     /// of squares, in place (entry j is read before it is overwritten).
     fn between_groups_tile(&self, wide: &mut [f32], cols: usize) {
         let r = self.spec.width();
-        let inverse: Vec<f32> = self
-            .spec
-            .group_sizes
-            .iter()
-            .map(|&g| 1.0 / g as f32)
-            .collect();
+        let inverse = &self.inverse_group_sizes;
         for j in 0..cols {
             let mut rest = 0.0f32;
             let mut ssb = 0.0f32;
