@@ -333,3 +333,61 @@ fn exact_mean_difference_nulls_are_on_the_t_scale() {
     // t = 2.1913466 (df 4); by hand, 1.63333 / sqrt(3.33333 / 4 * 2 / 3).
     assert!(null.contains("observed 2.1913"), "{null}");
 }
+
+/// k groups: the null of the one-way F is drawn against the F(k-1, n-k)
+/// density (the reference of scipy.stats.f_oneway), with every relabelling.
+#[test]
+fn k_group_nulls_are_drawn_against_the_f_density() {
+    let dir = tempfile::tempdir().unwrap();
+    let samples: Vec<String> = (0..9).map(|i| format!("s{i}")).collect();
+    let matrix = dir.path().join("k.arrow");
+    let mut w = create_matrix_writer(
+        &matrix,
+        MatrixFormat::ArrowIpc,
+        "feature",
+        &samples,
+        ValueType::F64,
+        64,
+    )
+    .unwrap();
+    let mut rng = TestRng::new(9);
+    let ids: Vec<String> = (0..20).map(|i| format!("g{i}")).collect();
+    let values: Vec<f64> = (0..20 * 9)
+        .map(|k| rng.normal() + if k % 9 >= 6 && k / 9 < 3 { 3.0 } else { 0.0 })
+        .collect();
+    w.write_block(&ids, &values).unwrap();
+    w.finish().unwrap();
+    let sheet = dir.path().join("k.tsv");
+    let mut text = String::from("sample\tdose\n");
+    for (i, s) in samples.iter().enumerate() {
+        text.push_str(&format!("{s}\td{}\n", i / 3));
+    }
+    std::fs::write(&sheet, text).unwrap();
+    let out = dir.path().join("run");
+    ok(&riffle(&[
+        "scan",
+        "--matrix",
+        matrix.to_str().unwrap(),
+        "--samples",
+        sheet.to_str().unwrap(),
+        "--group",
+        "dose",
+        "--test",
+        "anova",
+        "--perms",
+        "300",
+        "--out",
+        out.to_str().unwrap(),
+        "--format",
+        "tsv",
+        "--quiet",
+    ]));
+    let null = std::fs::read_to_string(out.join("report/null_1.svg")).unwrap();
+    assert!(null.contains("model: F(2, 6)"), "{null}");
+    let bars = count(
+        &parse(&out.join("report/null_1.svg")),
+        "bar",
+        Some("null-bars"),
+    );
+    assert_eq!(data_count_sum(&bars), 300);
+}

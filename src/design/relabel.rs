@@ -68,6 +68,18 @@ impl Relabelings {
         )
     }
 
+    /// Exchangeable samples with any number of classes.
+    pub fn draw_classes(classes: &[u8], requested: usize, seed: u64) -> Self {
+        Self::generate(
+            &Scheme::Permute {
+                classes,
+                strata: None,
+            },
+            requested,
+            seed,
+        )
+    }
+
     /// All distinct relabelings when they number at most `requested`
     /// (listed in a fixed order), else `requested` seeded draws.
     pub fn generate(scheme: &Scheme<'_>, requested: usize, seed: u64) -> Self {

@@ -14,12 +14,13 @@ use std::path::{Path, PathBuf};
 
 use serde_json::Value;
 
-use crate::design::{Relabelings, SampleSheet, TwoGroupDesign};
+use crate::design::{DesignColumns, Relabelings, SampleSheet, StudyDesign};
 use crate::error::{IoContext, Result, RiffleError};
 use crate::input::{self, FeatureBlock};
 use crate::output::TableFormat;
 use crate::stats::prepare::{PrepScratch, Status, TestSpec};
 use crate::stats::relabelled::{model_reference, relabelled_statistics};
+use crate::stats::DesignKind;
 use crate::stats::{Side, Sizes, TestKind};
 use collect::{Collected, ResultRow};
 use svg::{escape, Svg};
@@ -268,9 +269,14 @@ fn null_panels(run: &RunRecord, shown: &[ResultRow]) -> Result<Vec<NullOutcome>>
     if shown.is_empty() {
         return Ok(Vec::new());
     }
-    let two_groups = matches!(
+    let group_test = matches!(
         run.test,
-        TestKind::Welch | TestKind::Student | TestKind::MeanDiff | TestKind::RankSum
+        TestKind::Welch
+            | TestKind::Student
+            | TestKind::MeanDiff
+            | TestKind::RankSum
+            | TestKind::Anova
+            | TestKind::Kruskal
     );
     let plain = ["trait_column", "pair", "strata"].iter().all(|k| {
         run.json
@@ -281,23 +287,23 @@ fn null_panels(run: &RunRecord, shown: &[ResultRow]) -> Result<Vec<NullOutcome>>
         .pointer("/options/covariates")
         .and_then(Value::as_array)
         .is_none_or(|c| c.is_empty());
-    if !(two_groups && plain) {
+    if !(group_test && plain) {
         return Err(RiffleError::options(
-            "null distributions are drawn for two-group tests without pairs, strata, traits or \
+            "null distributions are drawn for group tests without pairs, strata, traits or \
              covariates in this version",
         ));
     }
     let sheet = SampleSheet::read(&run.samples, &run.sample_column)?;
-    let levels = run
-        .levels
-        .as_ref()
-        .filter(|l| l.len() == 2)
-        .map(|l| (l[0].as_str(), l[1].as_str()));
-    let design = TwoGroupDesign::from_sheet(&sheet, &run.group, levels)?;
+    let columns = DesignColumns {
+        group: Some(run.group.clone()),
+        levels: run.levels.clone(),
+        ..Default::default()
+    };
+    let design = StudyDesign::from_sheet(&sheet, DesignKind::Groups, &columns)?;
     let recorded_samples = run.json.pointer("/design/samples").cloned();
-    let recorded_labels = run.json.pointer("/design/classes").cloned();
+    let recorded_classes = run.json.pointer("/design/classes").cloned();
     if recorded_samples != Some(serde_json::json!(design.samples))
-        || recorded_labels != Some(serde_json::json!(design.labels))
+        || recorded_classes != Some(serde_json::json!(design.classes))
     {
         return Err(RiffleError::bad_input(
             &run.samples,
@@ -310,7 +316,7 @@ fn null_panels(run: &RunRecord, shown: &[ResultRow]) -> Result<Vec<NullOutcome>>
         ));
     }
     let mut source = input::open_matrix(&run.matrix, &run.id_column, &design.samples)?;
-    let relabelings = Relabelings::draw(&design.labels, run.perms, run.seed);
+    let relabelings = Relabelings::draw_classes(&design.classes, run.perms, run.seed);
     if relabelings.count != run.relabelings {
         return Err(RiffleError::bad_input(
             &run.path,
@@ -321,14 +327,28 @@ fn null_panels(run: &RunRecord, shown: &[ResultRow]) -> Result<Vec<NullOutcome>>
             ),
         ));
     }
-    let spec = TestSpec::two_group(
-        run.test,
-        run.side,
-        Sizes {
-            n_a: design.n_a,
-            n_b: design.n_b,
-        },
-    );
+    let spec = if run.test.is_k_group() {
+        TestSpec {
+            test: run.test,
+            side: Side::Both,
+            sizes: Sizes {
+                n_a: design.units(),
+                n_b: 0,
+            },
+            group_sizes: design.group_sizes.clone(),
+            trait_weights: Vec::new(),
+            model: None,
+        }
+    } else {
+        TestSpec::two_group(
+            run.test,
+            run.side,
+            Sizes {
+                n_a: design.group_sizes[0],
+                n_b: design.group_sizes[1],
+            },
+        )
+    };
     // The difference in means is drawn on the t scale, where the model
     // reference lives; for one feature the two are monotone in each other.
     let plot_spec = TestSpec {
@@ -340,7 +360,7 @@ fn null_panels(run: &RunRecord, shown: &[ResultRow]) -> Result<Vec<NullOutcome>>
         ..spec.clone()
     };
     let mut block = FeatureBlock::default();
-    let mut z = vec![0.0; design.n()];
+    let mut z = vec![0.0; design.units()];
     let mut scratch = PrepScratch::default();
     let mut outcomes = Vec::with_capacity(shown.len());
     for row in shown {
@@ -363,7 +383,7 @@ fn null_panels(run: &RunRecord, shown: &[ResultRow]) -> Result<Vec<NullOutcome>>
             ));
         }
         let raw = block.row(0).to_vec();
-        let observed = spec.prepare(&raw, &design.labels, &mut z, &mut scratch);
+        let observed = spec.prepare(&raw, &design.classes, &mut z, &mut scratch);
         let same = observed.status == Status::Tested
             && (observed.statistic - row.statistic).abs() <= 1e-9 * row.statistic.abs().max(1.0);
         if !same {
@@ -376,15 +396,15 @@ fn null_panels(run: &RunRecord, shown: &[ResultRow]) -> Result<Vec<NullOutcome>>
                 ),
             ));
         }
-        let plotted = plot_spec.prepare(&raw, &design.labels, &mut z, &mut scratch);
+        let plotted = plot_spec.prepare(&raw, &design.classes, &mut z, &mut scratch);
         let statistics = relabelled_statistics(&plot_spec, &raw, &relabelings);
         let panel = plots::NullPanel {
             feature: &row.feature,
             test: run.test,
             statistics: &statistics,
             observed: plotted.statistic,
-            reference: model_reference(&spec, &raw, &design.labels),
-            mirror: run.side == Side::Both,
+            reference: model_reference(&spec, &raw, &design.classes),
+            mirror: run.side == Side::Both && !run.test.is_k_group(),
             exact: relabelings.exact,
             p_perm: row.p_perm,
             p_param: row.p_param,

@@ -459,6 +459,8 @@ pub fn null_plot(panel: &NullPanel) -> Svg {
         TestKind::Student => "Student t",
         TestKind::MeanDiff => "pooled-variance t (the difference in means on the t scale)",
         TestKind::RankSum => "Mann–Whitney U of group B",
+        TestKind::Anova => "one-way F",
+        TestKind::Kruskal => "Kruskal–Wallis H",
         other => other.name(),
     };
     svg.text(
@@ -511,6 +513,15 @@ pub fn null_plot(panel: &NullPanel) -> Svg {
         ModelReference::Normal { mean, sd } => {
             Normal::new(mean, sd).map(|d| d.pdf(x)).unwrap_or(f64::NAN)
         }
+        ModelReference::FisherF { df1, df2 } if x > 0.0 => {
+            statrs::distribution::FisherSnedecor::new(df1, df2)
+                .map(|d| d.pdf(x))
+                .unwrap_or(f64::NAN)
+        }
+        ModelReference::ChiSquared { df } if x > 0.0 => statrs::distribution::ChiSquared::new(df)
+            .map(|d| d.pdf(x))
+            .unwrap_or(f64::NAN),
+        _ => f64::NAN,
     };
     let curve: Vec<(f64, f64)> = (0..=200)
         .map(|i| {
@@ -560,7 +571,7 @@ pub fn null_plot(panel: &NullPanel) -> Svg {
     if panel.mirror {
         let mirrored = match panel.reference {
             ModelReference::Normal { mean, .. } => 2.0 * mean - panel.observed,
-            ModelReference::StudentT { .. } => -panel.observed,
+            _ => -panel.observed,
         };
         mark(&mut svg, mirrored, "observed-mirror");
     }
@@ -569,6 +580,8 @@ pub fn null_plot(panel: &NullPanel) -> Svg {
         ModelReference::Normal { mean, sd } => {
             format!("model: normal approximation N({mean:.1}, sd {sd:.2})")
         }
+        ModelReference::FisherF { df1, df2 } => format!("model: F({df1:.0}, {df2:.0})"),
+        ModelReference::ChiSquared { df } => format!("model: chi-squared, df {df:.0}"),
     };
     let relabel_label = format!(
         "{} relabelings{}",

@@ -32,6 +32,10 @@ pub enum ModelReference {
     StudentT { df: f64 },
     /// Normal approximation (of the Mann–Whitney U).
     Normal { mean: f64, sd: f64 },
+    /// F distribution (one-way F).
+    FisherF { df1: f64, df2: f64 },
+    /// Chi-squared distribution (Kruskal–Wallis H).
+    ChiSquared { df: f64 },
 }
 
 /// The model reference of one feature under the observed labels: Student t
@@ -42,7 +46,13 @@ pub fn model_reference(spec: &TestSpec, raw: &[f64], labels: &[u8]) -> ModelRefe
     let sizes = spec.sizes;
     let (na, nb) = (sizes.n_a as f64, sizes.n_b as f64);
     let n = na + nb;
+    let k = spec.group_sizes.len() as f64;
     match spec.test {
+        TestKind::Anova => ModelReference::FisherF {
+            df1: k - 1.0,
+            df2: raw.len() as f64 - k,
+        },
+        TestKind::Kruskal => ModelReference::ChiSquared { df: k - 1.0 },
         TestKind::Student | TestKind::MeanDiff => ModelReference::StudentT { df: n - 2.0 },
         TestKind::Welch => {
             let mut z = vec![0.0; raw.len()];
