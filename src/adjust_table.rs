@@ -524,7 +524,7 @@ impl InputTable {
     fn open(path: &Path) -> Result<InputTable> {
         let mut file = File::open(path).at(path)?;
         let mut head = [0u8; 8];
-        let head_len = read_up_to(&mut file, &mut head).at(path)?;
+        let head_len = crate::input::read_up_to(&mut file, &mut head).at(path)?;
         let head = &head[..head_len];
         if head.starts_with(b"PAR1") || head.starts_with(b"ARROW1") {
             // Also checks the trailer, with its own clear messages.
@@ -661,20 +661,6 @@ impl InputTable {
             }),
         })
     }
-}
-
-fn read_up_to(file: &mut File, buf: &mut [u8]) -> std::io::Result<usize> {
-    use std::io::Read;
-    let mut filled = 0;
-    while filled < buf.len() {
-        match file.read(&mut buf[filled..]) {
-            Ok(0) => break,
-            Ok(n) => filled += n,
-            Err(e) if e.kind() == std::io::ErrorKind::Interrupted => {}
-            Err(e) => return Err(e),
-        }
-    }
-    Ok(filled)
 }
 
 fn corrupt(path: &Path, place: &str, format: &str, detail: impl std::fmt::Display) -> RiffleError {

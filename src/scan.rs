@@ -223,9 +223,8 @@ fn import_if_text(options: &ScanOptions, stop: &AtomicBool) -> Result<PathBuf> {
     let path = &options.matrix;
     let mut head = [0u8; 512];
     let read = {
-        use std::io::Read;
         let mut file = std::fs::File::open(path).at(path)?;
-        file.read(&mut head).at(path)?
+        input::read_up_to(&mut file, &mut head).at(path)?
     };
     let head = &head[..read];
     let gzip = head.starts_with(&[0x1f, 0x8b]);

@@ -398,6 +398,20 @@ fn strata_keep_a_confounded_batch_calibrated() {
 /// elimination (textbook, independent of riffle's Gram–Schmidt): returns the
 /// coefficients and the t statistic of column `j`.
 fn ols_t(columns: &[Vec<f64>], y: &[f64], j: usize) -> (f64, f64) {
+    let (beta, inverse) = least_squares(columns, y);
+    let (n, p) = (y.len(), columns.len());
+    let rss: f64 = (0..n)
+        .map(|i| {
+            let fit: f64 = (0..p).map(|r| beta[r] * columns[r][i]).sum();
+            (y[i] - fit) * (y[i] - fit)
+        })
+        .sum();
+    let sigma2 = rss / (n - p) as f64;
+    (beta[j], beta[j] / (sigma2 * inverse[j][j]).sqrt())
+}
+
+/// Coefficients and (X'X)^-1 of the least-squares fit of y on `columns`.
+fn least_squares(columns: &[Vec<f64>], y: &[f64]) -> (Vec<f64>, Vec<Vec<f64>>) {
     let p = columns.len();
     let n = y.len();
     let mut a = vec![vec![0.0; 2 * p]; p];
@@ -422,20 +436,14 @@ fn ols_t(columns: &[Vec<f64>], y: &[f64], j: usize) -> (f64, f64) {
             }
         }
     }
+    let inverse: Vec<Vec<f64>> = a.iter().map(|row| row[p..].to_vec()).collect();
     let xty: Vec<f64> = (0..p)
         .map(|r| (0..n).map(|i| columns[r][i] * y[i]).sum())
         .collect();
-    let beta: Vec<f64> = (0..p)
-        .map(|r| (0..p).map(|c| a[r][p + c] * xty[c]).sum())
+    let beta = (0..p)
+        .map(|r| (0..p).map(|c| inverse[r][c] * xty[c]).sum())
         .collect();
-    let rss: f64 = (0..n)
-        .map(|i| {
-            let fit: f64 = (0..p).map(|r| beta[r] * columns[r][i]).sum();
-            (y[i] - fit) * (y[i] - fit)
-        })
-        .sum();
-    let sigma2 = rss / (n - p) as f64;
-    (beta[j], beta[j] / (sigma2 * a[j][p + j]).sqrt())
+    (beta, inverse)
 }
 
 fn covariate_sheet(classes: &[usize], age: &[f64], site: &[&str]) -> String {
@@ -515,24 +523,11 @@ fn freedman_lane_exact_enumeration_and_ols_agree() {
         );
         assert!((p_param[f] - 2.0 * student.sf(t_obs.abs())).abs() < 1e-9);
         // Residuals and fitted values under the nuisance model.
-        let fitted: Vec<f64> = {
-            let mut cols = nuisance.clone();
-            cols.push(vec![0.0; 7]);
-            let p = nuisance.len();
-            // OLS of y on the nuisance columns.
-            let mut a = vec![vec![0.0; p]; p];
-            let mut b = vec![0.0; p];
-            for r in 0..p {
-                for c in 0..p {
-                    a[r][c] = (0..7).map(|i| nuisance[r][i] * nuisance[c][i]).sum();
-                }
-                b[r] = (0..7).map(|i| nuisance[r][i] * y[i]).sum();
-            }
-            let gamma = solve(a, b);
-            (0..7)
-                .map(|i| (0..p).map(|r| gamma[r] * nuisance[r][i]).sum())
-                .collect()
-        };
+        // Fitted values of the nuisance model.
+        let (gamma, _) = least_squares(&nuisance, y);
+        let fitted: Vec<f64> = (0..7)
+            .map(|i| (0..nuisance.len()).map(|r| gamma[r] * nuisance[r][i]).sum())
+            .collect();
         let resid: Vec<f64> = y.iter().zip(&fitted).map(|(a, b)| a - b).collect();
         let positions: Vec<usize> = (0..7).collect();
         let all: Vec<f64> = arrangements(&positions)
@@ -549,26 +544,6 @@ fn freedman_lane_exact_enumeration_and_ols_agree() {
             p_perm[f]
         );
     }
-}
-
-fn solve(mut a: Vec<Vec<f64>>, mut b: Vec<f64>) -> Vec<f64> {
-    let p = b.len();
-    for c in 0..p {
-        let pivot = (c..p)
-            .max_by(|&x, &y| a[x][c].abs().total_cmp(&a[y][c].abs()))
-            .unwrap();
-        a.swap(c, pivot);
-        b.swap(c, pivot);
-        for r in 0..p {
-            if r != c {
-                let f = a[r][c] / a[c][c];
-                let row_c = a[c].clone();
-                a[r].iter_mut().zip(&row_c).for_each(|(v, w)| *v -= f * w);
-                b[r] -= f * b[c];
-            }
-        }
-    }
-    (0..p).map(|r| b[r] / a[r][r]).collect()
 }
 
 /// Type I error of Freedman–Lane under the null with a covariate strongly

@@ -183,7 +183,8 @@ pub fn detect_format(path: &Path) -> Result<MatrixFormat> {
     ))
 }
 
-fn read_up_to(file: &mut File, buf: &mut [u8]) -> std::io::Result<usize> {
+/// Reads until `buf` is full or the file ends; returns the bytes read.
+pub(crate) fn read_up_to(file: &mut File, buf: &mut [u8]) -> std::io::Result<usize> {
     let mut filled = 0;
     while filled < buf.len() {
         match file.read(&mut buf[filled..]) {
