@@ -693,7 +693,7 @@ fn check_design_options(options: &ScanOptions) -> Result<()> {
 }
 
 /// The test's fixed parts from the design.
-fn test_spec(options: &ScanOptions, design: &StudyDesign) -> Result<TestSpec> {
+pub(crate) fn test_spec(options: &ScanOptions, design: &StudyDesign) -> Result<TestSpec> {
     let test = options.test;
     let n = design.units();
     Ok(match test.design() {

@@ -391,3 +391,112 @@ fn k_group_nulls_are_drawn_against_the_f_density() {
     );
     assert_eq!(data_count_sum(&bars), 300);
 }
+
+/// Pairs, a trait, strata and covariates: every design gets its null plot
+/// (paired t against t(pairs - 1), r against its normal-theory null density,
+/// the covariate model's t against t(residual df)), one bar per relabelling.
+#[test]
+fn every_design_gets_its_null_plot() {
+    let dir = tempfile::tempdir().unwrap();
+    let samples: Vec<String> = (0..12).map(|i| format!("s{i}")).collect();
+    let matrix = dir.path().join("d.arrow");
+    let mut w = create_matrix_writer(
+        &matrix,
+        MatrixFormat::ArrowIpc,
+        "feature",
+        &samples,
+        ValueType::F64,
+        64,
+    )
+    .unwrap();
+    let mut rng = TestRng::new(19);
+    let ids: Vec<String> = (0..15).map(|i| format!("g{i}")).collect();
+    let values: Vec<f64> = (0..15 * 12)
+        .map(|k| rng.normal() + if k % 12 >= 6 && k / 12 < 3 { 2.5 } else { 0.0 })
+        .collect();
+    w.write_block(&ids, &values).unwrap();
+    w.finish().unwrap();
+    let sheet = dir.path().join("d.tsv");
+    let mut text = String::from("sample\ttime\tsubject\tage\tsite\n");
+    for (i, s) in samples.iter().enumerate() {
+        let time = if i < 6 { "pre" } else { "post" };
+        let site = if i % 3 == 0 { "x" } else { "y" };
+        text.push_str(&format!(
+            "{s}\t{time}\tp{}\t{}\t{site}\n",
+            i % 6,
+            30 + (i * 7) % 23
+        ));
+    }
+    std::fs::write(&sheet, text).unwrap();
+    let cases: [(&str, &[&str], &str); 4] = [
+        (
+            "paired",
+            &[
+                "--test", "paired-t", "--group", "time", "--levels", "pre,post", "--pair",
+                "subject",
+            ],
+            "model: Student t, df 5.00",
+        ),
+        (
+            "trait",
+            &["--test", "pearson", "--trait", "age"],
+            "model: null density of r, n = 12",
+        ),
+        (
+            "strata",
+            &[
+                "--test", "welch", "--group", "time", "--levels", "pre,post", "--strata", "site",
+            ],
+            "model: Student t",
+        ),
+        (
+            "covariates",
+            &[
+                "--test",
+                "student",
+                "--group",
+                "time",
+                "--levels",
+                "pre,post",
+                "--covariates",
+                "age,site",
+            ],
+            "model: Student t, df 8.00",
+        ),
+    ];
+    for (name, args, label) in cases {
+        let out = dir.path().join(name);
+        let mut full = vec![
+            "scan",
+            "--matrix",
+            matrix.to_str().unwrap(),
+            "--samples",
+            sheet.to_str().unwrap(),
+            "--perms",
+            "200",
+            "--out",
+            out.to_str().unwrap(),
+            "--format",
+            "tsv",
+            "--quiet",
+        ];
+        full.extend_from_slice(args);
+        ok(&riffle(&full));
+        let path = out.join("report/null_1.svg");
+        let null = std::fs::read_to_string(&path).unwrap_or_else(|e| {
+            panic!(
+                "{name}: {e}: {}",
+                std::fs::read_to_string(out.join("report/report.html")).unwrap_or_default()
+            )
+        });
+        assert!(
+            null.contains(label),
+            "{name}: no '{label}' in the null plot"
+        );
+        let bars = count(&parse(&path), "bar", Some("null-bars"));
+        let drawn = data_count_sum(&bars);
+        // Paired: 2^6 = 64 sign flips, all listed (63 besides the observed).
+        let expected = if name == "paired" { 63 } else { 200 };
+        assert_eq!(drawn, expected, "{name}");
+    }
+}

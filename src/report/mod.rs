@@ -20,8 +20,7 @@ use crate::input::{self, FeatureBlock};
 use crate::output::TableFormat;
 use crate::stats::prepare::{PrepScratch, Status, TestSpec};
 use crate::stats::relabelled::{model_reference, relabelled_statistics};
-use crate::stats::DesignKind;
-use crate::stats::{Side, Sizes, TestKind};
+use crate::stats::{Side, TestKind};
 use collect::{Collected, ResultRow};
 use svg::{escape, Svg};
 
@@ -70,7 +69,6 @@ struct RunRecord {
     sample_column: String,
     id_column: String,
     group: String,
-    levels: Option<Vec<String>>,
     test: TestKind,
     side: Side,
     perms: usize,
@@ -150,17 +148,12 @@ impl RunRecord {
                 )
             })
         }
-        let levels = match json.pointer("/options/levels") {
-            None | Some(Value::Null) => None,
-            Some(v) => Some(parse::<Vec<String>>(&path, "/options/levels", v.clone())?),
-        };
         Ok(RunRecord {
             matrix: PathBuf::from(text_of("/options/matrix")?),
             samples: PathBuf::from(text_of("/options/samples")?),
             sample_column: text_of("/options/sample_column")?,
             id_column: text_of("/options/id_column")?,
             group: text_of("/options/group")?,
-            levels,
             test: parse(&path, "/options/test", typed("/options/test", "a test")?)?,
             side: parse(&path, "/options/side", typed("/options/side", "a side")?)?,
             perms: integer_of("/options/perms")? as usize,
@@ -269,37 +262,20 @@ fn null_panels(run: &RunRecord, shown: &[ResultRow]) -> Result<Vec<NullOutcome>>
     if shown.is_empty() {
         return Ok(Vec::new());
     }
-    let group_test = matches!(
-        run.test,
-        TestKind::Welch
-            | TestKind::Student
-            | TestKind::MeanDiff
-            | TestKind::RankSum
-            | TestKind::Anova
-            | TestKind::Kruskal
-    );
-    let plain = ["trait_column", "pair", "strata"].iter().all(|k| {
-        run.json
-            .pointer(&format!("/options/{k}"))
-            .is_none_or(Value::is_null)
-    }) && run
-        .json
-        .pointer("/options/covariates")
-        .and_then(Value::as_array)
-        .is_none_or(|c| c.is_empty());
-    if !(group_test && plain) {
-        return Err(RiffleError::options(
-            "null distributions are drawn for group tests without pairs, strata, traits or \
-             covariates in this version",
-        ));
-    }
+    let options: crate::scan::ScanOptions =
+        serde_json::from_value(run.json.pointer("/options").cloned().unwrap_or_default()).map_err(
+            |e| RiffleError::bad_input(&run.path, "field '/options'", format!("unreadable: {e}")),
+        )?;
     let sheet = SampleSheet::read(&run.samples, &run.sample_column)?;
     let columns = DesignColumns {
-        group: Some(run.group.clone()),
-        levels: run.levels.clone(),
-        ..Default::default()
+        group: (!options.group.is_empty()).then(|| options.group.clone()),
+        levels: options.levels.clone(),
+        trait_column: options.trait_column.clone(),
+        pair: options.pair.clone(),
+        strata: options.strata.clone(),
+        covariates: options.covariates.clone(),
     };
-    let design = StudyDesign::from_sheet(&sheet, DesignKind::Groups, &columns)?;
+    let design = StudyDesign::from_sheet(&sheet, options.test.design(), &columns)?;
     let recorded_samples = run.json.pointer("/design/samples").cloned();
     let recorded_classes = run.json.pointer("/design/classes").cloned();
     if recorded_samples != Some(serde_json::json!(design.samples))
@@ -316,7 +292,8 @@ fn null_panels(run: &RunRecord, shown: &[ResultRow]) -> Result<Vec<NullOutcome>>
         ));
     }
     let mut source = input::open_matrix(&run.matrix, &run.id_column, &design.samples)?;
-    let relabelings = Relabelings::draw_classes(&design.classes, run.perms, run.seed);
+    let trait_classes = design.trait_classes();
+    let relabelings = Relabelings::generate(&design.scheme(&trait_classes), run.perms, run.seed);
     if relabelings.count != run.relabelings {
         return Err(RiffleError::bad_input(
             &run.path,
@@ -327,28 +304,7 @@ fn null_panels(run: &RunRecord, shown: &[ResultRow]) -> Result<Vec<NullOutcome>>
             ),
         ));
     }
-    let spec = if run.test.is_k_group() {
-        TestSpec {
-            test: run.test,
-            side: Side::Both,
-            sizes: Sizes {
-                n_a: design.units(),
-                n_b: 0,
-            },
-            group_sizes: design.group_sizes.clone(),
-            trait_weights: Vec::new(),
-            model: None,
-        }
-    } else {
-        TestSpec::two_group(
-            run.test,
-            run.side,
-            Sizes {
-                n_a: design.group_sizes[0],
-                n_b: design.group_sizes[1],
-            },
-        )
-    };
+    let spec = crate::scan::test_spec(&options, &design)?;
     // The difference in means is drawn on the t scale, where the model
     // reference lives; for one feature the two are monotone in each other.
     let plot_spec = TestSpec {

@@ -461,7 +461,10 @@ pub fn null_plot(panel: &NullPanel) -> Svg {
         TestKind::RankSum => "Mann–Whitney U of group B",
         TestKind::Anova => "one-way F",
         TestKind::Kruskal => "Kruskal–Wallis H",
-        other => other.name(),
+        TestKind::PairedT => "paired t",
+        TestKind::SignedRank => "W+ (sum of positive ranks)",
+        TestKind::Pearson => "Pearson r",
+        TestKind::Spearman => "Spearman rho",
     };
     svg.text(
         "title",
@@ -521,6 +524,9 @@ pub fn null_plot(panel: &NullPanel) -> Svg {
         ModelReference::ChiSquared { df } if x > 0.0 => statrs::distribution::ChiSquared::new(df)
             .map(|d| d.pdf(x))
             .unwrap_or(f64::NAN),
+        ModelReference::Correlation { n } if x.abs() < 1.0 => {
+            (1.0 - x * x).powf((n - 4.0) / 2.0) / statrs::function::beta::beta(0.5, (n - 2.0) / 2.0)
+        }
         _ => f64::NAN,
     };
     let curve: Vec<(f64, f64)> = (0..=200)
@@ -582,6 +588,7 @@ pub fn null_plot(panel: &NullPanel) -> Svg {
         }
         ModelReference::FisherF { df1, df2 } => format!("model: F({df1:.0}, {df2:.0})"),
         ModelReference::ChiSquared { df } => format!("model: chi-squared, df {df:.0}"),
+        ModelReference::Correlation { n } => format!("model: null density of r, n = {n:.0}"),
     };
     let relabel_label = format!(
         "{} relabelings{}",

@@ -4,18 +4,52 @@
 //! relabelings, drawn again from the recorded seed.
 
 use super::prepare::{standardize, PrepScratch, Status, TestSpec};
-use super::{mid_ranks, welch_t, GroupSums, TestKind};
+use super::{mid_ranks, welch_t, DesignKind, GroupSums, TestKind};
 use crate::design::Relabelings;
 
 /// The reported statistic of `raw` under every relabelling, in relabelling
 /// order (NaN where a relabelling leaves the feature untestable, e.g. no
 /// variance within either group).
 pub fn relabelled_statistics(spec: &TestSpec, raw: &[f64], relabelings: &Relabelings) -> Vec<f64> {
-    let mut z = vec![0.0; raw.len()];
+    let n = spec.units();
+    let mut z = vec![0.0; n];
     let mut scratch = PrepScratch::default();
+    let mut values = raw.to_vec();
+    let mut permuted = spec.clone();
+    // Freedman–Lane: the nuisance fit stays, the residuals move.
+    let (residuals, fitted) = match &spec.model {
+        Some(model) => {
+            let mut e = vec![0.0; raw.len()];
+            model.residualize(raw, &mut e);
+            let fit: Vec<f64> = raw.iter().zip(&e).map(|(y, r)| y - r).collect();
+            (e, fit)
+        }
+        None => (Vec::new(), Vec::new()),
+    };
     (0..relabelings.count)
         .map(|b| {
-            let p = spec.prepare(raw, relabelings.row(b), &mut z, &mut scratch);
+            let p = if relabelings.sign_flips {
+                // A flipped pair swaps its two samples (raw: all A, then all B).
+                values.copy_from_slice(raw);
+                for (i, &flip) in relabelings.row(b).iter().enumerate() {
+                    if flip == 1 {
+                        values.swap(i, n + i);
+                    }
+                }
+                spec.prepare(&values, &[], &mut z, &mut scratch)
+            } else if spec.model.is_some() {
+                for (i, &src) in relabelings.source_row(b).iter().enumerate() {
+                    values[i] = residuals[src as usize] + fitted[i];
+                }
+                spec.prepare(&values, &[], &mut z, &mut scratch)
+            } else if spec.test.design() == DesignKind::Trait {
+                for (i, &src) in relabelings.source_row(b).iter().enumerate() {
+                    permuted.trait_weights[i] = spec.trait_weights[src as usize];
+                }
+                permuted.prepare(raw, &[], &mut z, &mut scratch)
+            } else {
+                spec.prepare(raw, relabelings.row(b), &mut z, &mut scratch)
+            };
             if p.status == Status::Tested {
                 p.statistic
             } else {
@@ -36,6 +70,9 @@ pub enum ModelReference {
     FisherF { df1: f64, df2: f64 },
     /// Chi-squared distribution (Kruskal–Wallis H).
     ChiSquared { df: f64 },
+    /// Null density of a correlation coefficient of `n` normal pairs,
+    /// (1 - r^2)^((n - 4)/2) / B(1/2, (n - 2)/2).
+    Correlation { n: f64 },
 }
 
 /// The model reference of one feature under the observed labels: Student t
@@ -47,7 +84,29 @@ pub fn model_reference(spec: &TestSpec, raw: &[f64], labels: &[u8]) -> ModelRefe
     let (na, nb) = (sizes.n_a as f64, sizes.n_b as f64);
     let n = na + nb;
     let k = spec.group_sizes.len() as f64;
+    if let Some(model) = &spec.model {
+        return ModelReference::StudentT { df: model.df };
+    }
     match spec.test {
+        TestKind::PairedT => ModelReference::StudentT { df: na - 1.0 },
+        TestKind::SignedRank => {
+            let m = sizes.n_a;
+            let magnitudes: Vec<f64> = (0..m)
+                .map(|i| (raw[m + i] - raw[i]).abs())
+                .filter(|d| *d != 0.0)
+                .collect();
+            let mut order = Vec::new();
+            let mut ranks = vec![0.0; magnitudes.len()];
+            let tie_sum = mid_ranks(&magnitudes, &mut order, &mut ranks);
+            let nz = magnitudes.len() as f64;
+            ModelReference::Normal {
+                mean: nz * (nz + 1.0) / 4.0,
+                sd: (nz * (nz + 1.0) * (2.0 * nz + 1.0) / 24.0 - tie_sum / 48.0).sqrt(),
+            }
+        }
+        TestKind::Pearson | TestKind::Spearman => ModelReference::Correlation {
+            n: raw.len() as f64,
+        },
         TestKind::Anova => ModelReference::FisherF {
             df1: k - 1.0,
             df2: raw.len() as f64 - k,
