@@ -93,6 +93,19 @@ pub enum MaxtMode {
 }
 
 impl ScanOptions {
+    /// The study design these options name, read from `sheet`.
+    pub fn study_design(&self, sheet: &SampleSheet) -> Result<StudyDesign> {
+        let columns = DesignColumns {
+            group: (!self.group.is_empty()).then(|| self.group.clone()),
+            levels: self.levels.clone(),
+            trait_column: self.trait_column.clone(),
+            pair: self.pair.clone(),
+            strata: self.strata.clone(),
+            covariates: self.covariates.clone(),
+        };
+        StudyDesign::from_sheet(sheet, self.test.design(), &columns)
+    }
+
     /// Defaults for everything but the inputs, design and output.
     pub fn new(matrix: &Path, samples: &Path, group: &str, out: &Path) -> Self {
         ScanOptions {
@@ -188,16 +201,8 @@ pub fn run_scan(options: &ScanOptions, stop: &AtomicBool) -> Result<ScanSummary>
 pub fn run(options: &ScanOptions, stop: &AtomicBool) -> Result<ScanOutcome> {
     validate(options)?;
     let sheet = SampleSheet::read(&options.samples, &options.sample_column)?;
-    let columns = DesignColumns {
-        group: (!options.group.is_empty()).then(|| options.group.clone()),
-        levels: options.levels.clone(),
-        trait_column: options.trait_column.clone(),
-        pair: options.pair.clone(),
-        strata: options.strata.clone(),
-        covariates: options.covariates.clone(),
-    };
     check_design_options(options)?;
-    let design = StudyDesign::from_sheet(&sheet, options.test.design(), &columns)?;
+    let design = options.study_design(&sheet)?;
     let matrix = import_if_text(options, stop)?;
     let source = input::open_matrix(&matrix, &options.id_column, &design.samples).map_err(|e| {
         // Name the user's file, not the scratch copy imported from it.

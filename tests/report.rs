@@ -339,24 +339,7 @@ fn exact_mean_difference_nulls_are_on_the_t_scale() {
 #[test]
 fn k_group_nulls_are_drawn_against_the_f_density() {
     let dir = tempfile::tempdir().unwrap();
-    let samples: Vec<String> = (0..9).map(|i| format!("s{i}")).collect();
-    let matrix = dir.path().join("k.arrow");
-    let mut w = create_matrix_writer(
-        &matrix,
-        MatrixFormat::ArrowIpc,
-        "feature",
-        &samples,
-        ValueType::F64,
-        64,
-    )
-    .unwrap();
-    let mut rng = TestRng::new(9);
-    let ids: Vec<String> = (0..20).map(|i| format!("g{i}")).collect();
-    let values: Vec<f64> = (0..20 * 9)
-        .map(|k| rng.normal() + if k % 9 >= 6 && k / 9 < 3 { 3.0 } else { 0.0 })
-        .collect();
-    w.write_block(&ids, &values).unwrap();
-    w.finish().unwrap();
+    let (matrix, samples) = shifted_matrix(dir.path(), "k.arrow", 9, 20, 3.0, 9);
     let sheet = dir.path().join("k.tsv");
     let mut text = String::from("sample\tdose\n");
     for (i, s) in samples.iter().enumerate() {
@@ -398,24 +381,7 @@ fn k_group_nulls_are_drawn_against_the_f_density() {
 #[test]
 fn every_design_gets_its_null_plot() {
     let dir = tempfile::tempdir().unwrap();
-    let samples: Vec<String> = (0..12).map(|i| format!("s{i}")).collect();
-    let matrix = dir.path().join("d.arrow");
-    let mut w = create_matrix_writer(
-        &matrix,
-        MatrixFormat::ArrowIpc,
-        "feature",
-        &samples,
-        ValueType::F64,
-        64,
-    )
-    .unwrap();
-    let mut rng = TestRng::new(19);
-    let ids: Vec<String> = (0..15).map(|i| format!("g{i}")).collect();
-    let values: Vec<f64> = (0..15 * 12)
-        .map(|k| rng.normal() + if k % 12 >= 6 && k / 12 < 3 { 2.5 } else { 0.0 })
-        .collect();
-    w.write_block(&ids, &values).unwrap();
-    w.finish().unwrap();
+    let (matrix, samples) = shifted_matrix(dir.path(), "d.arrow", 12, 15, 2.5, 19);
     let sheet = dir.path().join("d.tsv");
     let mut text = String::from("sample\ttime\tsubject\tage\tsite\n");
     for (i, s) in samples.iter().enumerate() {
@@ -499,4 +465,42 @@ fn every_design_gets_its_null_plot() {
         let expected = if name == "paired" { 63 } else { 200 };
         assert_eq!(drawn, expected, "{name}");
     }
+}
+
+/// Normal values, `features` x `n_samples`; the first 3 features shifted by
+/// `shift` in the second half of the samples (the last third for 9).
+fn shifted_matrix(
+    dir: &Path,
+    name: &str,
+    n_samples: usize,
+    features: usize,
+    shift: f64,
+    seed: u64,
+) -> (PathBuf, Vec<String>) {
+    let samples: Vec<String> = (0..n_samples).map(|i| format!("s{i}")).collect();
+    let matrix = dir.join(name);
+    let mut w = create_matrix_writer(
+        &matrix,
+        MatrixFormat::ArrowIpc,
+        "feature",
+        &samples,
+        ValueType::F64,
+        64,
+    )
+    .unwrap();
+    let mut rng = TestRng::new(seed);
+    let ids: Vec<String> = (0..features).map(|i| format!("g{i}")).collect();
+    let values: Vec<f64> = (0..features * n_samples)
+        .map(|k| {
+            rng.normal()
+                + if k % n_samples >= 6 && k / n_samples < 3 {
+                    shift
+                } else {
+                    0.0
+                }
+        })
+        .collect();
+    w.write_block(&ids, &values).unwrap();
+    w.finish().unwrap();
+    (matrix, samples)
 }

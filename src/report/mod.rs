@@ -14,7 +14,7 @@ use std::path::{Path, PathBuf};
 
 use serde_json::Value;
 
-use crate::design::{DesignColumns, Relabelings, SampleSheet, StudyDesign};
+use crate::design::{Relabelings, SampleSheet};
 use crate::error::{IoContext, Result, RiffleError};
 use crate::input::{self, FeatureBlock};
 use crate::output::TableFormat;
@@ -267,15 +267,7 @@ fn null_panels(run: &RunRecord, shown: &[ResultRow]) -> Result<Vec<NullOutcome>>
             |e| RiffleError::bad_input(&run.path, "field '/options'", format!("unreadable: {e}")),
         )?;
     let sheet = SampleSheet::read(&run.samples, &run.sample_column)?;
-    let columns = DesignColumns {
-        group: (!options.group.is_empty()).then(|| options.group.clone()),
-        levels: options.levels.clone(),
-        trait_column: options.trait_column.clone(),
-        pair: options.pair.clone(),
-        strata: options.strata.clone(),
-        covariates: options.covariates.clone(),
-    };
-    let design = StudyDesign::from_sheet(&sheet, options.test.design(), &columns)?;
+    let design = options.study_design(&sheet)?;
     let recorded_samples = run.json.pointer("/design/samples").cloned();
     let recorded_classes = run.json.pointer("/design/classes").cloned();
     if recorded_samples != Some(serde_json::json!(design.samples))
