@@ -4,17 +4,11 @@
 mod common;
 
 use std::path::{Path, PathBuf};
-use std::process::{Command, Output};
+use std::process::Output;
 
+use common::riffle;
 use common::Table;
 use riffle::input::{create_matrix_writer, MatrixFormat, ValueType};
-
-fn riffle(args: &[&str]) -> Output {
-    Command::new(env!("CARGO_BIN_EXE_riffle"))
-        .args(args)
-        .output()
-        .expect("run riffle")
-}
 
 fn stderr(o: &Output) -> String {
     String::from_utf8_lossy(&o.stderr).into_owned()

@@ -5,8 +5,9 @@ mod common;
 
 use std::io::Write;
 use std::path::{Path, PathBuf};
-use std::process::{Command, Output};
+use std::process::Output;
 
+use common::riffle;
 use common::TestRng;
 use riffle::input::{open_matrix, FeatureBlock};
 
@@ -86,13 +87,6 @@ fn write_text(path: &Path, text: &str, gzip: bool) {
         let mut file = file;
         file.write_all(text.as_bytes()).unwrap();
     }
-}
-
-fn riffle(args: &[&str]) -> Output {
-    Command::new(env!("CARGO_BIN_EXE_riffle"))
-        .args(args)
-        .output()
-        .expect("riffle runs")
 }
 
 fn stderr(output: &Output) -> String {

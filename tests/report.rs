@@ -5,20 +5,14 @@
 mod common;
 
 use std::path::{Path, PathBuf};
-use std::process::{Command, Output};
+use std::process::Output;
 
+use common::riffle;
 use common::{Table, TestRng};
 use riffle::input::{create_matrix_writer, MatrixFormat, ValueType};
 
 const FEATURES: usize = 300;
 const PLANTED: usize = 30;
-
-fn riffle(args: &[&str]) -> Output {
-    Command::new(env!("CARGO_BIN_EXE_riffle"))
-        .args(args)
-        .output()
-        .expect("run riffle")
-}
 
 fn ok(o: &Output) {
     assert!(

@@ -138,3 +138,11 @@ pub fn scan_with_sheet(
     let source = MemorySource::new(ids, design.samples.clone(), values).unwrap();
     run_scan_on(Box::new(source), &design, options, &AtomicBool::new(false)).unwrap()
 }
+
+/// Runs the built `riffle` binary with `args`.
+pub fn riffle(args: &[&str]) -> std::process::Output {
+    std::process::Command::new(env!("CARGO_BIN_EXE_riffle"))
+        .args(args)
+        .output()
+        .expect("run riffle")
+}
