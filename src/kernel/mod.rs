@@ -9,9 +9,15 @@
 
 use crate::design::Relabelings;
 use crate::stats::prepare::{Assignment, PrepScratch, Prepared, Status, TestSpec};
-use crate::stats::{DesignKind, Side};
+use crate::stats::DesignKind;
 
 use crate::stats::TestKind;
+
+mod finish;
+mod histogram;
+
+use finish::orient_all;
+pub use histogram::{NullHistogram, UpperTail};
 
 /// Features per GEMM tile (rows of the left operand).
 const ROW_TILE: usize = 64;
@@ -339,44 +345,6 @@ impl Kernel {
         }
     }
 
-    /// Compacts `cols` groups of `width` class sums into between-group sums
-    /// of squares, in place (entry j is read before it is overwritten).
-    fn between_groups_tile(&self, wide: &mut [f32], cols: usize) {
-        let r = self.spec.width();
-        let inverse = &self.inverse_group_sizes;
-        for j in 0..cols {
-            let mut rest = 0.0f32;
-            let mut ssb = 0.0f32;
-            for c in 0..r {
-                let s = wide[j * r + c];
-                rest += s;
-                ssb += s * s * inverse[c + 1];
-            }
-            wide[j] = ssb + rest * rest * inverse[0];
-        }
-    }
-
-    /// Compacts `cols` groups of sums against the model basis into oriented
-    /// t statistics, in place; ill-conditioned ones (residual sum of squares
-    /// lost to cancellation) become NaN so that they are recomputed in f64.
-    fn model_tile(&self, wide: &mut [f32], cols: usize) {
-        let r = self.spec.width();
-        let n = self.units() as f32;
-        let df = self.spec.model.as_ref().map_or(1.0, |m| m.df) as f32;
-        let side = self.spec.side;
-        for j in 0..cols {
-            let sums = &wide[j * r..(j + 1) * r];
-            let explained: f32 = sums.iter().map(|s| s * s).sum();
-            let rss = (n - 1.0) - explained;
-            let t = if rss > 1e-2 * (n - 1.0) {
-                sums[0] / (rss / df).sqrt()
-            } else {
-                f32::NAN
-            };
-            wide[j] = side.orient32(t);
-        }
-    }
-
     /// Largest possible |f32 - f64| of a kernel statistic for a feature:
     /// each weighted sum errs by at most delta (rounding of z and of the
     /// weights to f32 plus n accumulations, over sum |z w|).
@@ -451,30 +419,6 @@ impl Kernel {
                 1,
             );
         }
-    }
-
-    /// Turns group sums and sums of squares into oriented Welch t in place;
-    /// ill-conditioned entries (variance lost to cancellation) become NaN so
-    /// that they are recomputed in f64.
-    fn welch_tile(&self, sums: &mut [f32], squares: &[f32]) {
-        let sizes = self.spec.sizes;
-        let (na, nb) = (sizes.n_a as f32, sizes.n_b as f32);
-        let total_sq = na + nb - 1.0;
-        let (inv_na, inv_nb) = (1.0 / na, 1.0 / nb);
-        let (var_a, var_b) = (1.0 / ((na - 1.0) * na), 1.0 / ((nb - 1.0) * nb));
-        let diff = inv_na + inv_nb;
-        // Branch-free so that it vectorizes; the side is applied after.
-        for (v, &q1) in sums.iter_mut().zip(squares) {
-            let s1 = *v;
-            let s1sq = s1 * s1;
-            let q0 = total_sq - q1;
-            let ss_b = q1 - s1sq * inv_nb;
-            let ss_a = q0 - s1sq * inv_na;
-            let conditioned = (ss_b > 1e-2 * q1) & (ss_a > 1e-2 * q0);
-            let t = s1 * diff / (ss_a * var_a + ss_b * var_b).sqrt();
-            *v = if conditioned { t } else { f32::NAN };
-        }
-        orient_all(self.spec.side, sums);
     }
 
     /// Counts relabelings at least as extreme as the row's observed
@@ -611,73 +555,6 @@ impl RankState {
     }
 }
 
-/// All relabelled kernel statistics of all features, counted in fine bins
-/// (1 sign, 8 exponent and 10 mantissa bits of the f32 value: a relative
-/// resolution of 2^-10), merged by addition across chunks, workers and
-/// shards. Gives the pooled-null p-value of an observed statistic: the
-/// share of null statistics in its bin or above (Storey & Tibshirani 2003,
-/// PNAS 100, null pooled over features and relabelings).
-#[derive(Debug, Clone)]
-pub struct NullHistogram {
-    pub counts: Vec<u64>,
-}
-
-impl NullHistogram {
-    pub const BINS: usize = 1 << 19;
-
-    #[inline(always)]
-    pub fn bin(v: f32) -> usize {
-        let bits = v.to_bits();
-        // Order-preserving map of f32 to u32, then the top 19 bits.
-        let ordered = if bits >> 31 == 1 {
-            !bits
-        } else {
-            bits | 0x8000_0000
-        };
-        (ordered >> 13) as usize
-    }
-
-    pub fn empty() -> Self {
-        NullHistogram {
-            counts: vec![0; Self::BINS],
-        }
-    }
-
-    pub fn add(&mut self, other: &[u64]) {
-        for (a, b) in self.counts.iter_mut().zip(other) {
-            *a += b;
-        }
-    }
-
-    /// Turns the counts into "null statistics in this bin or above".
-    pub fn into_upper_tail(mut self) -> UpperTail {
-        let mut running = 0u64;
-        for c in self.counts.iter_mut().rev() {
-            running += *c;
-            *c = running;
-        }
-        UpperTail {
-            total: running,
-            at_or_above: self.counts,
-        }
-    }
-}
-
-pub struct UpperTail {
-    pub total: u64,
-    at_or_above: Vec<u64>,
-}
-
-impl UpperTail {
-    /// Pooled-null p-value of an observed kernel statistic: null statistics
-    /// in its bin or above, plus one, over all null statistics plus one
-    /// (never 0, as with (b + 1)/(B + 1)).
-    pub fn p_value(&self, observed: f64) -> f64 {
-        let above = self.at_or_above[NullHistogram::bin(observed as f32)];
-        ((above + 1) as f64 / (self.total + 1) as f64).min(1.0)
-    }
-}
-
 #[derive(Default)]
 struct RowBuffers {
     z32: Vec<f32>,
@@ -696,15 +573,6 @@ struct RowsView<'a> {
     z32: &'a [f32],
     sq32: &'a [f32],
     band: &'a [f64],
-}
-
-/// "Larger is more extreme" for a whole slice, the side chosen once.
-fn orient_all(side: Side, values: &mut [f32]) {
-    match side {
-        Side::Both => values.iter_mut().for_each(|v| *v = v.abs()),
-        Side::Greater => {}
-        Side::Less => values.iter_mut().for_each(|v| *v = -*v),
-    }
 }
 
 /// Relabelling `b` in the form the test's statistic needs.

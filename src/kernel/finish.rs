@@ -1,0 +1,79 @@
+//! Tile finishers: turn the GEMM's weighted sums into oriented kernel
+//! statistics in place, in f32, with ill-conditioned entries set to NaN so
+//! that the counting pass recomputes them in f64.
+
+use super::Kernel;
+use crate::stats::Side;
+
+impl Kernel {
+    /// Compacts `cols` groups of `width` class sums into between-group sums
+    /// of squares, in place (entry j is read before it is overwritten).
+    pub(super) fn between_groups_tile(&self, wide: &mut [f32], cols: usize) {
+        let r = self.spec.width();
+        let inverse = &self.inverse_group_sizes;
+        for j in 0..cols {
+            let mut rest = 0.0f32;
+            let mut ssb = 0.0f32;
+            for c in 0..r {
+                let s = wide[j * r + c];
+                rest += s;
+                ssb += s * s * inverse[c + 1];
+            }
+            wide[j] = ssb + rest * rest * inverse[0];
+        }
+    }
+
+    /// Compacts `cols` groups of sums against the model basis into oriented
+    /// t statistics, in place; ill-conditioned ones (residual sum of squares
+    /// lost to cancellation) become NaN so that they are recomputed in f64.
+    pub(super) fn model_tile(&self, wide: &mut [f32], cols: usize) {
+        let r = self.spec.width();
+        let n = self.units() as f32;
+        let df = self.spec.model.as_ref().map_or(1.0, |m| m.df) as f32;
+        let side = self.spec.side;
+        for j in 0..cols {
+            let sums = &wide[j * r..(j + 1) * r];
+            let explained: f32 = sums.iter().map(|s| s * s).sum();
+            let rss = (n - 1.0) - explained;
+            let t = if rss > 1e-2 * (n - 1.0) {
+                sums[0] / (rss / df).sqrt()
+            } else {
+                f32::NAN
+            };
+            wide[j] = side.orient32(t);
+        }
+    }
+
+    /// Turns group sums and sums of squares into oriented Welch t in place;
+    /// ill-conditioned entries (variance lost to cancellation) become NaN so
+    /// that they are recomputed in f64.
+    pub(super) fn welch_tile(&self, sums: &mut [f32], squares: &[f32]) {
+        let sizes = self.spec.sizes;
+        let (na, nb) = (sizes.n_a as f32, sizes.n_b as f32);
+        let total_sq = na + nb - 1.0;
+        let (inv_na, inv_nb) = (1.0 / na, 1.0 / nb);
+        let (var_a, var_b) = (1.0 / ((na - 1.0) * na), 1.0 / ((nb - 1.0) * nb));
+        let diff = inv_na + inv_nb;
+        // Branch-free so that it vectorizes; the side is applied after.
+        for (v, &q1) in sums.iter_mut().zip(squares) {
+            let s1 = *v;
+            let s1sq = s1 * s1;
+            let q0 = total_sq - q1;
+            let ss_b = q1 - s1sq * inv_nb;
+            let ss_a = q0 - s1sq * inv_na;
+            let conditioned = (ss_b > 1e-2 * q1) & (ss_a > 1e-2 * q0);
+            let t = s1 * diff / (ss_a * var_a + ss_b * var_b).sqrt();
+            *v = if conditioned { t } else { f32::NAN };
+        }
+        orient_all(self.spec.side, sums);
+    }
+}
+
+/// "Larger is more extreme" for a whole slice, the side chosen once.
+pub(super) fn orient_all(side: Side, values: &mut [f32]) {
+    match side {
+        Side::Both => values.iter_mut().for_each(|v| *v = v.abs()),
+        Side::Greater => {}
+        Side::Less => values.iter_mut().for_each(|v| *v = -*v),
+    }
+}
