@@ -91,7 +91,8 @@ pub struct ScanArgs {
     pub strata: Option<String>,
     /// Sample-sheet columns to adjust for (numeric as is, text one-hot with
     /// the first level as reference; an intercept is always in): the test
-    /// becomes a linear model's t, permuted by Freedman–Lane.
+    /// becomes a linear model's t (student, pearson) or F (anova), permuted
+    /// by Freedman–Lane.
     #[arg(long, value_delimiter = ',')]
     pub covariates: Vec<String>,
     #[arg(long, value_enum, default_value_t = TestKind::Welch)]

@@ -653,11 +653,14 @@ fn finish_shard(
 fn check_design_options(options: &ScanOptions) -> Result<()> {
     let test = options.test.name();
     if !options.covariates.is_empty()
-        && !matches!(options.test, TestKind::Student | TestKind::Pearson)
+        && !matches!(
+            options.test,
+            TestKind::Student | TestKind::Pearson | TestKind::Anova
+        )
     {
         return Err(RiffleError::options(format!(
-            "--covariates makes the test a linear model's t: use --test student (two groups) or \
-             --test pearson (a trait), not --test {test}"
+            "--covariates makes the test a linear model's t or F: use --test student (two \
+             groups), anova (k groups) or pearson (a trait), not --test {test}"
         )));
     }
     match options.test.design() {
@@ -715,7 +718,7 @@ pub(crate) fn test_spec(options: &ScanOptions, design: &StudyDesign) -> Result<T
                 sizes: Sizes { n_a: n, n_b: 0 },
                 group_sizes: design.group_sizes.clone(),
                 trait_weights: Vec::new(),
-                model: None,
+                model: design.model.clone(),
             }
         }
         DesignKind::Groups => {

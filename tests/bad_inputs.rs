@@ -734,7 +734,38 @@ fn cases() -> Vec<Case> {
         // Rows for ragged rows, duplicate ids, non-numeric cells and Inf in
         // text matrices go here once `riffle import` lands (another branch).
         // ---- strata / covariates ----
-        // Rows for bad strata and covariate columns come with that feature.
+        Case {
+            name: "covariate column not in the sheet",
+            code: BAD_INPUT,
+            fragments: &["sheet.tsv", "'age'", "--covariates"],
+            args: |f| f.good_scan(&["--test", "student", "--covariates", "age"]),
+        },
+        Case {
+            name: "covariates with a rank test",
+            code: BAD_INPUT,
+            fragments: &["--covariates", "kruskal", "anova"],
+            args: |f| f.good_scan(&["--test", "kruskal", "--covariates", "age"]),
+        },
+        Case {
+            name: "covariate that is constant",
+            code: BAD_INPUT,
+            fragments: &["with-age.tsv", "'age'", "constant"],
+            args: |f| {
+                let sheet = f.sheet_text(
+                    "with-age.tsv",
+                    &GOOD_SHEET
+                        .lines()
+                        .enumerate()
+                        .map(|(i, l)| format!("{l}\t{}\n", if i == 0 { "age" } else { "40" }))
+                        .collect::<String>(),
+                );
+                f.scan(
+                    &f.arrow,
+                    &sheet,
+                    &["--test", "anova", "--covariates", "age"],
+                )
+            },
+        },
     ]
 }
 

@@ -590,3 +590,108 @@ fn freedman_lane_is_calibrated_with_a_confounding_covariate() {
         "{hits} of 2000 at p <= 0.05, expected [{low}, {high}]"
     );
 }
+
+/// Residual sum of squares of the least-squares fit of y on `columns`.
+fn rss(columns: &[Vec<f64>], y: &[f64]) -> f64 {
+    let (beta, _) = least_squares(columns, y);
+    (0..y.len())
+        .map(|i| {
+            let fit: f64 = (0..columns.len()).map(|r| beta[r] * columns[r][i]).sum();
+            (y[i] - fit) * (y[i] - fit)
+        })
+        .sum()
+}
+
+/// k groups with a covariate (Freedman–Lane for the F of several effect
+/// columns, Winkler et al. 2014, NeuroImage 92): the reported F is the
+/// textbook extra-sum-of-squares F of the group indicators after the
+/// intercept and age, p_param its F(2, 3) tail, the effect the partial eta
+/// squared, and with all 7! residual permutations listed, p_perm equals the
+/// share of permuted data sets y* = P e + H_Z y whose F reaches the observed.
+#[test]
+fn freedman_lane_k_groups_exact_enumeration_and_ols_agree() {
+    use statrs::distribution::{ContinuousCDF, FisherSnedecor};
+    let classes = [0usize, 1, 2, 0, 1, 2, 1];
+    let age = [31.0, 45.0, 52.0, 38.0, 61.0, 29.0, 50.0];
+    let site = ["x"; 7];
+    let mut rng = TestRng::new(33);
+    let rows: Vec<Vec<f64>> = (0..4)
+        .map(|f| {
+            (0..7)
+                .map(|i| {
+                    1.0 + 0.04 * age[i] + rng.normal() * 0.5 + 0.5 * f as f64 * classes[i] as f64
+                })
+                .collect()
+        })
+        .collect();
+    let dir = tempfile::tempdir().unwrap();
+    let mut o = options(dir.path());
+    o.test = TestKind::Anova;
+    o.perms = 6000;
+    o.covariates = vec!["age".into()];
+    let columns = DesignColumns {
+        group: Some("group".into()),
+        covariates: o.covariates.clone(),
+        ..Default::default()
+    };
+    let summary = scan_with_sheet(
+        &rows,
+        &covariate_sheet(&classes, &age, &site),
+        DesignKind::Groups,
+        &columns,
+        &o,
+    );
+    assert!(summary.exact);
+    let table = Table::read(&summary.results_path);
+    let (p_perm, p_param, f_reported, effect) = (
+        table.f64s("p_perm"),
+        table.f64s("p_param"),
+        table.f64s("statistic"),
+        table.f64s("effect"),
+    );
+    let indicator = |level: usize| -> Vec<f64> {
+        classes
+            .iter()
+            .map(|&c| f64::from(u8::from(c == level)))
+            .collect()
+    };
+    let nuisance = vec![vec![1.0; 7], age.to_vec()];
+    let mut full = nuisance.clone();
+    full.push(indicator(1));
+    full.push(indicator(2));
+    let f_of = |y: &[f64]| {
+        let (reduced, complete) = (rss(&nuisance, y), rss(&full, y));
+        ((reduced - complete) / 2.0) / (complete / 3.0)
+    };
+    let reference = FisherSnedecor::new(2.0, 3.0).unwrap();
+    for (f, y) in rows.iter().enumerate() {
+        let f_obs = f_of(y);
+        assert!(
+            (f_reported[f] - f_obs).abs() < 1e-9 * (1.0 + f_obs),
+            "feature {f}: F {} vs {f_obs}",
+            f_reported[f]
+        );
+        assert!((p_param[f] - reference.sf(f_obs)).abs() < 1e-9);
+        let (reduced, complete) = (rss(&nuisance, y), rss(&full, y));
+        assert!((effect[f] - (reduced - complete) / reduced).abs() < 1e-9);
+        let (gamma, _) = least_squares(&nuisance, y);
+        let fitted: Vec<f64> = (0..7)
+            .map(|i| (0..nuisance.len()).map(|r| gamma[r] * nuisance[r][i]).sum())
+            .collect();
+        let resid: Vec<f64> = y.iter().zip(&fitted).map(|(a, b)| a - b).collect();
+        let positions: Vec<usize> = (0..7).collect();
+        let all: Vec<f64> = arrangements(&positions)
+            .iter()
+            .map(|perm| {
+                let y_star: Vec<f64> = (0..7).map(|i| resid[perm[i]] + fitted[i]).collect();
+                f_of(&y_star)
+            })
+            .collect();
+        let expected = exact_p(f_obs, &all);
+        assert!(
+            (p_perm[f] - expected).abs() < 1e-12,
+            "feature {f}: {} vs {expected}",
+            p_perm[f]
+        );
+    }
+}

@@ -7,8 +7,9 @@
 use crate::design::SampleSheet;
 use crate::error::{Result, RiffleError};
 
-/// What the kernel needs of a model y = x b + Z g + e, for one effect of
-/// interest x.
+/// What the kernel needs of a model y = X b + Z g + e, for an effect of
+/// interest X of one column (a t test) or several (an F test, e.g. k - 1
+/// group indicators).
 #[derive(Debug, Clone)]
 pub struct LinearModel {
     /// Orthonormal basis of span(Z) (intercept and covariates), units long.
@@ -17,7 +18,10 @@ pub struct LinearModel {
     /// span([Z, x]) and, divided by `effect_norm`, the row of
     /// (M'M)^-1 M' that gives x's coefficient (Frisch–Waugh–Lovell).
     pub effect_direction: Vec<f64>,
-    /// |x residualized on Z|.
+    /// Further orthonormal directions of span(X) residualized on Z, when the
+    /// effect has more than one column (empty for a t test).
+    pub further_effects: Vec<Vec<f64>>,
+    /// |x residualized on Z| (of the first effect column).
     pub effect_norm: f64,
     /// Residual degrees of freedom, n - rank(M).
     pub df: f64,
@@ -26,19 +30,32 @@ pub struct LinearModel {
 }
 
 impl LinearModel {
-    /// Columns of M (as basis): nuisance first, then the effect direction.
+    /// Columns of M (as basis).
     pub fn basis_len(&self) -> usize {
-        self.nuisance_basis.len() + 1
+        self.nuisance_basis.len() + self.effect_columns()
     }
 
-    /// Builds the model from the effect column `x` (units long) and the
-    /// covariate columns of the sheet, for the sheet rows `rows` (one per
-    /// unit, in unit order).
+    /// Columns of the effect of interest (1 for a t test).
+    pub fn effect_columns(&self) -> usize {
+        1 + self.further_effects.len()
+    }
+
+    /// The orthonormal basis of span(M) in the kernel's column order: the
+    /// effect directions first, then the nuisance basis.
+    pub fn columns(&self) -> impl Iterator<Item = &Vec<f64>> {
+        std::iter::once(&self.effect_direction)
+            .chain(&self.further_effects)
+            .chain(&self.nuisance_basis)
+    }
+
+    /// Builds the model from the effect columns `xs` (each units long) and
+    /// the covariate columns of the sheet, for the sheet rows `rows` (one
+    /// per unit, in unit order).
     pub fn build(
         sheet: &SampleSheet,
         covariates: &[String],
         rows: &[usize],
-        x: &[f64],
+        xs: &[Vec<f64>],
         effect_name: &str,
     ) -> Result<Self> {
         let n = rows.len();
@@ -105,7 +122,15 @@ impl LinearModel {
                 }
             }
         }
-        let mut residual = x.to_vec();
+        let explained_by = |terms: &[String]| {
+            if terms.len() > 1 {
+                format!("the covariates ({})", terms[1..].join(", "))
+            } else {
+                "the intercept".to_string()
+            }
+        };
+        let x = &xs[0];
+        let mut residual = x.clone();
         for q in &basis {
             let c: f64 = q.iter().zip(&residual).map(|(a, b)| a * b).sum();
             residual.iter_mut().zip(q).for_each(|(r, qi)| *r -= c * qi);
@@ -117,25 +142,49 @@ impl LinearModel {
                 &sheet.path,
                 format!("column '{effect_name}'"),
                 format!(
-                    "'{effect_name}' is fully explained by the covariates ({}); nothing is left to test",
-                    terms[1..].join(", ")
+                    "'{effect_name}' is fully explained by {}; nothing is left to test",
+                    explained_by(&terms)
                 ),
             ));
         }
-        let df = n as f64 - basis.len() as f64 - 1.0;
+        let effect_direction: Vec<f64> = residual.iter().map(|v| v / norm).collect();
+        let mut spanned = basis.clone();
+        spanned.push(effect_direction.clone());
+        let mut further_effects = Vec::new();
+        for x in &xs[1..] {
+            match orthogonal_remainder(x, &spanned) {
+                Some(q) => {
+                    spanned.push(q.clone());
+                    further_effects.push(q);
+                }
+                None => {
+                    return Err(RiffleError::bad_input(
+                        &sheet.path,
+                        format!("column '{effect_name}'"),
+                        format!(
+                            "a level of '{effect_name}' is fully explained by {} and the other \
+                             levels; nothing is left to test for it",
+                            explained_by(&terms)
+                        ),
+                    ))
+                }
+            }
+        }
+        let df = n as f64 - spanned.len() as f64;
         if df < 1.0 {
             return Err(RiffleError::bad_input(
                 &sheet.path,
                 "covariates",
                 format!(
                     "{} model terms for {n} units leave no residual degrees of freedom",
-                    basis.len() + 1
+                    spanned.len()
                 ),
             ));
         }
         Ok(LinearModel {
             nuisance_basis: basis,
-            effect_direction: residual.iter().map(|v| v / norm).collect(),
+            effect_direction,
+            further_effects,
             effect_norm: norm,
             df,
             terms,

@@ -413,29 +413,38 @@ impl StudyDesign {
     }
 
     /// The per-feature linear model with the covariates; the effect of
-    /// interest is group B against A, or the trait.
+    /// interest is the group (B against A, or all levels against the first)
+    /// or the trait.
     fn linear_model(&self, sheet: &SampleSheet, columns: &DesignColumns) -> Result<LinearModel> {
-        let (x, name): (Vec<f64>, String) = match self.kind {
-            DesignKind::Groups if self.levels.len() == 2 => (
-                self.classes.iter().map(|&c| f64::from(c)).collect(),
-                columns.group.clone().unwrap_or_default(),
-            ),
-            DesignKind::Trait => (
-                self.trait_values.clone(),
-                columns.trait_column.clone().unwrap_or_default(),
-            ),
-            _ => {
-                return Err(RiffleError::options(
-                    "--covariates works with two groups (--test student) or a trait \
-                     (--test pearson); k-group and paired models are not offered yet",
-                ))
-            }
-        };
+        let (xs, name): (Vec<Vec<f64>>, String) =
+            match self.kind {
+                // One indicator per level but the first (the reference): the
+                // F test of all of them; with two levels, the t of group B.
+                DesignKind::Groups => (
+                    (1..self.levels.len())
+                        .map(|level| {
+                            self.classes
+                                .iter()
+                                .map(|&c| f64::from(u8::from(usize::from(c) == level)))
+                                .collect()
+                        })
+                        .collect(),
+                    columns.group.clone().unwrap_or_default(),
+                ),
+                DesignKind::Trait => (
+                    vec![self.trait_values.clone()],
+                    columns.trait_column.clone().unwrap_or_default(),
+                ),
+                DesignKind::Paired => return Err(RiffleError::options(
+                    "--covariates works with groups (--test student, or anova for k groups) or a \
+                     trait (--test pearson); paired models are not offered yet",
+                )),
+            };
         let row_of: BTreeMap<&str, usize> = (0..sheet.rows.len())
             .map(|r| (sheet.sample(r), r))
             .collect();
         let rows: Vec<usize> = self.samples.iter().map(|s| row_of[s.as_str()]).collect();
-        LinearModel::build(sheet, &columns.covariates, &rows, &x, &name)
+        LinearModel::build(sheet, &columns.covariates, &rows, &xs, &name)
     }
 
     /// Stratum of each unit, by the strata column (paired: both samples of

@@ -24,23 +24,29 @@ impl Kernel {
     }
 
     /// Compacts `cols` groups of sums against the model basis into oriented
-    /// t statistics, in place; ill-conditioned ones (residual sum of squares
-    /// lost to cancellation) become NaN so that they are recomputed in f64.
+    /// t statistics (or F, for an effect of several columns), in place;
+    /// ill-conditioned ones (residual sum of squares lost to cancellation)
+    /// become NaN so that they are recomputed in f64.
     pub(super) fn model_tile(&self, wide: &mut [f32], cols: usize) {
         let r = self.spec.width();
         let n = self.units() as f32;
-        let df = self.spec.model.as_ref().map_or(1.0, |m| m.df) as f32;
+        let model = self.spec.model.as_ref();
+        let df = model.map_or(1.0, |m| m.df) as f32;
+        let effects = model.map_or(1, |m| m.effect_columns());
+        let f_test = self.spec.model_f();
         let side = self.spec.side;
         for j in 0..cols {
             let sums = &wide[j * r..(j + 1) * r];
             let explained: f32 = sums.iter().map(|s| s * s).sum();
             let rss = (n - 1.0) - explained;
-            let t = if rss > 1e-2 * (n - 1.0) {
-                sums[0] / (rss / df).sqrt()
-            } else {
+            wide[j] = if rss <= 1e-2 * (n - 1.0) {
                 f32::NAN
+            } else if f_test {
+                let effect: f32 = sums[..effects].iter().map(|s| s * s).sum();
+                (effect / effects as f32) / (rss / df)
+            } else {
+                side.orient32(sums[0] / (rss / df).sqrt())
             };
-            wide[j] = side.orient32(t);
         }
     }
 

@@ -352,7 +352,9 @@ impl Kernel {
         let n = self.units() as f64;
         let delta = 2.0 * (n + 2.0) * F32_UNIT * abs_sum + 1e-12;
         if self.spec.model.is_some() {
-            return 2e-4 * (1.0 + kernel_obs.abs());
+            // F is a ratio of squares: twice the relative error of t.
+            let scale = if self.spec.model_f() { 4e-4 } else { 2e-4 };
+            return scale * (1.0 + kernel_obs.abs());
         }
         match self.spec.test {
             TestKind::Welch => 2e-4 * (1.0 + kernel_obs.abs()),
@@ -387,6 +389,7 @@ impl Kernel {
     /// An f32 value below this cannot belong to an f64 statistic above `max`.
     fn max_floor(&self, max: f64, chunk_band: f64) -> f32 {
         let relative = match self.spec.test {
+            _ if self.spec.model_f() => 4e-4 * (1.0 + max.abs()),
             _ if self.spec.model.is_some() => 2e-4 * (1.0 + max.abs()),
             TestKind::Welch => 2e-4 * (1.0 + max.abs()),
             _ => 0.0,

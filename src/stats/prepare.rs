@@ -139,6 +139,12 @@ impl TestSpec {
         }
     }
 
+    /// With covariates, whether the model's statistic is an F (k groups)
+    /// rather than a t.
+    pub fn model_f(&self) -> bool {
+        self.model.is_some() && self.test.is_k_group()
+    }
+
     /// Units the kernel sees per feature: samples, or pairs.
     pub fn units(&self) -> usize {
         if let Some(model) = &self.model {
@@ -178,8 +184,7 @@ impl TestSpec {
         if let Some(model) = &self.model {
             // Unit j's residual moves to the unit that takes it: weights are
             // the model basis at the inverse permutation.
-            let columns = std::iter::once(&model.effect_direction).chain(&model.nuisance_basis);
-            for (c, basis) in columns.enumerate() {
+            for (c, basis) in model.columns().enumerate() {
                 match assignment {
                     Assignment::Sources(src) => {
                         for (i, &s) in src.iter().enumerate() {
@@ -227,8 +232,7 @@ impl TestSpec {
     pub fn kernel_stat_with(&self, z: &[f64], assignment: Assignment<'_>) -> f64 {
         let mut sums = [0.0f64; MAX_GROUPS];
         if let Some(model) = &self.model {
-            let columns = std::iter::once(&model.effect_direction).chain(&model.nuisance_basis);
-            for (c, basis) in columns.enumerate() {
+            for (c, basis) in model.columns().enumerate() {
                 sums[c] = match assignment {
                     Assignment::Sources(src) => src
                         .iter()
@@ -286,6 +290,9 @@ impl TestSpec {
     #[inline]
     pub fn finish(&self, sums: &[f64], q1: f64) -> f64 {
         if let Some(model) = &self.model {
+            if self.model_f() {
+                return model_f(sums, model.effect_columns(), self.units(), model.df);
+            }
             return self.side.orient(model_t(sums, self.units(), model.df));
         }
         match self.test {
@@ -455,13 +462,23 @@ impl TestSpec {
             *v /= scale;
             abs_sum += v.abs();
         }
-        let mut sums = vec![0.0; self.width()];
-        sums[0] = model
-            .effect_direction
-            .iter()
-            .zip(z.iter())
-            .map(|(a, b)| a * b)
-            .sum();
+        let effects = model.effect_columns();
+        let sums: Vec<f64> = model
+            .columns()
+            .take(effects)
+            .map(|basis| basis.iter().zip(z.iter()).map(|(a, b)| a * b).sum())
+            .collect();
+        if self.model_f() {
+            let f = model_f(&sums, effects, z.len(), model.df);
+            if !f.is_finite() {
+                return Prepared::untested(Status::NoWithinVariance, f64::NAN);
+            }
+            // Partial eta squared: the effect's share of what the
+            // covariates leave (n - 1 after standardization).
+            let partial_eta2 = sums.iter().map(|s| s * s).sum::<f64>() / (n - 1.0);
+            let p = f_pvalue(f, effects as f64, model.df);
+            return self.finish_prepared(z, labels, abs_sum, partial_eta2, f, p);
+        }
         let t = model_t(&sums, z.len(), model.df);
         if !t.is_finite() {
             return Prepared::untested(Status::NoWithinVariance, coefficient);
@@ -582,6 +599,18 @@ impl TestSpec {
         }
         self.finish_prepared(z, &[], abs_sum, mean, statistic, p_param)
     }
+}
+
+/// F of an effect of `effects` columns from the sums against the model
+/// basis (effect directions first) of residuals whose sum of squares is
+/// n - 1: the effect's sum of squares per column over the residual mean
+/// square.
+#[inline]
+pub fn model_f(sums: &[f64], effects: usize, n: usize, df: f64) -> f64 {
+    let explained: f64 = sums.iter().map(|s| s * s).sum();
+    let effect: f64 = sums[..effects].iter().map(|s| s * s).sum();
+    let rss = (n as f64 - 1.0) - explained;
+    (effect / effects as f64) / (rss.max(0.0) / df)
 }
 
 /// t of the effect from the sums against the model basis (effect direction

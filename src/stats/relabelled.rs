@@ -85,6 +85,12 @@ pub fn model_reference(spec: &TestSpec, raw: &[f64], labels: &[u8]) -> ModelRefe
     let n = na + nb;
     let k = spec.group_sizes.len() as f64;
     if let Some(model) = &spec.model {
+        if spec.model_f() {
+            return ModelReference::FisherF {
+                df1: model.effect_columns() as f64,
+                df2: model.df,
+            };
+        }
         return ModelReference::StudentT { df: model.df };
     }
     match spec.test {

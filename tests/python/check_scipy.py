@@ -224,6 +224,35 @@ def check_designs(folder):
     ok = worst <= 1e-9
     failures += not ok
     print(f"{'ok ' if ok else 'BAD'} covariates  max|t, p, effect - statsmodels OLS| = {worst:.2e}")
+    # k groups with covariates: the extra-sum-of-squares F of the arm
+    # indicators after age and site (statsmodels compare_f_test).
+    arms = np.array(["low", "mid", "high"] * 6)[:n + 2]
+    n3 = len(arms)
+    age3 = rng.normal(50, 10, size=n3)
+    site3 = np.array(["north", "south"] * (n3 // 2))
+    samples3 = [f"k{i}" for i in range(n3)]
+    level = {"high": 0.0, "low": 1.0, "mid": 2.0}
+    rows3 = [1 + 0.02 * age3 + rng.normal(size=n3) + 0.3 * k * np.array([level[a] for a in arms])
+             for k in range(6)]
+    matrix3 = write_matrix(folder, "k.arrow", rows3, samples3)
+    sheet3 = folder / "k.tsv"
+    sheet3.write_text("sample\tarm\tage\tsite\n" + "".join(
+        f"{s}\t{a}\t{float(g)!r}\t{st}\n" for s, a, g, st in zip(samples3, arms, age3.tolist(), site3)))
+    reduced_design = np.column_stack([np.ones(n3), age3, (site3 == "south").astype(float)])
+    full_design = np.column_stack([reduced_design, (arms == "low").astype(float),
+                                   (arms == "mid").astype(float)])
+    res3 = scan(matrix3, sheet3, folder / "out-ols-k", ["--test", "anova", "--group", "arm",
+                                                        "--covariates", "age,site", "--perms", "200"])
+    worst = 0.0
+    for r, y in zip(res3, rows3):
+        full_fit, reduced_fit = sm.OLS(y, full_design).fit(), sm.OLS(y, reduced_design).fit()
+        f_ref, p_ref, _ = full_fit.compare_f_test(reduced_fit)
+        eta = (reduced_fit.ssr - full_fit.ssr) / reduced_fit.ssr
+        worst = max(worst, abs(float(r["statistic"]) - f_ref) / (1 + f_ref),
+                    abs(float(r["p_param"]) - p_ref), abs(float(r["effect"]) - eta))
+    ok = worst <= 1e-9
+    failures += not ok
+    print(f"{'ok ' if ok else 'BAD'} covariates, k groups  max|F, p, partial eta2 - statsmodels OLS| = {worst:.2e}")
     return failures
 
 
