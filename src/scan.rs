@@ -567,7 +567,7 @@ fn scan_into_out_dir(
             &spill_dir,
             &crate::tail::TailSettings {
                 below,
-                options: crate::tail::TailOptions::default(),
+                options: crate::tail::TailOptions::for_reference_scale(),
             },
             stop,
         )?),

@@ -62,6 +62,20 @@ fn data(strong: usize, null: usize, seed: u64) -> Vec<Vec<f64>> {
     rows
 }
 
+/// Strong features only, shifts drawn so that most t p-values land in
+/// 1e-8..1e-4 (t about 4.4..8 at 38 df).
+fn data_in_range(strong: usize, seed: u64) -> Vec<Vec<f64>> {
+    let mut rng = TestRng::new(seed);
+    (0..strong)
+        .map(|_| {
+            let shift = 1.3 + 1.3 * rng.uniform();
+            (0..2 * N_PER_GROUP)
+                .map(|i| rng.normal() + if i >= N_PER_GROUP { shift } else { 0.0 })
+                .collect()
+        })
+        .collect()
+}
+
 fn tail_options(out: &std::path::Path) -> riffle::scan::ScanOptions {
     let mut o = options(out);
     o.test = TestKind::Student;
@@ -72,12 +86,14 @@ fn tail_options(out: &std::path::Path) -> riffle::scan::ScanOptions {
 }
 
 /// Per decade of the true p (1e-5..1e-4 is decade 4, ...): features, share
-/// with |log10 p_tail - log10 p_param| <= 0.3, share extrapolated.
-fn accuracy(rows: &[Vec<f64>], table: &Table) -> Vec<(i32, usize, f64, f64)> {
+/// with |log10 p_tail - log10 p_param| <= 0.3, share extrapolated, share
+/// within 1 (log10), median log10 error.
+fn accuracy(rows: &[Vec<f64>], table: &Table) -> Vec<(i32, usize, f64, f64, f64, f64)> {
     let labels = labels();
     let p_perm = table.f64s("p_perm");
     let source = table.text("p_source");
     let mut by_decade: Vec<(i32, usize, usize, usize)> = (4..=7).map(|d| (d, 0, 0, 0)).collect();
+    let mut errors: Vec<Vec<f64>> = vec![Vec::new(); 4];
     for (k, row) in rows.iter().enumerate() {
         let truth = student_p(row, &labels);
         if !(1e-8..=1e-4).contains(&truth) {
@@ -85,6 +101,7 @@ fn accuracy(rows: &[Vec<f64>], table: &Table) -> Vec<(i32, usize, f64, f64)> {
         }
         let decade = (-truth.log10()).floor().clamp(4.0, 7.0) as i32;
         let entry = &mut by_decade[(decade - 4) as usize];
+        errors[(decade - 4) as usize].push(p_perm[k].log10() - truth.log10());
         entry.1 += 1;
         if (p_perm[k].log10() - truth.log10()).abs() <= 0.3 {
             entry.2 += 1;
@@ -95,12 +112,17 @@ fn accuracy(rows: &[Vec<f64>], table: &Table) -> Vec<(i32, usize, f64, f64)> {
     }
     by_decade
         .into_iter()
-        .map(|(d, n, near, tail)| {
+        .zip(errors.iter_mut())
+        .map(|((d, n, near, tail), e)| {
+            e.sort_by(f64::total_cmp);
+            let within_1 = e.iter().filter(|x| x.abs() <= 1.0).count();
             (
                 d,
                 n,
                 near as f64 / n.max(1) as f64,
                 tail as f64 / n.max(1) as f64,
+                within_1 as f64 / n.max(1) as f64,
+                e.get(e.len() / 2).copied().unwrap_or(f64::NAN),
             )
         })
         .collect()
@@ -112,7 +134,8 @@ fn tail_pvalues_track_the_t_distribution_on_normal_data() {
     // truth; B = 2,000; features with true p in 1e-8..1e-4. See
     // BENCHMARKS.md for the larger measurement behind the bounds.
     let dir = tempfile::tempdir().unwrap();
-    let rows = data(400, 200, 1);
+    let mut rows = data_in_range(360, 1);
+    rows.extend(data(0, 60, 4));
     let o = tail_options(dir.path());
     scan_rows(&rows, &labels(), &o);
     let table = Table::read(&dir.path().join("results.tsv"));
@@ -120,23 +143,23 @@ fn tail_pvalues_track_the_t_distribution_on_normal_data() {
     let source = table.text("p_source");
     assert!(p_perm.iter().all(|&p| p > 0.0 && p <= 1.0));
     let report = accuracy(&rows, &table);
-    for &(decade, n, near, tail) in &report {
+    for &(decade, n, near, tail, within_1, median) in &report {
         eprintln!(
-            "true p in 1e-{}..1e-{decade}: {n} features, {near:.2} within 0.3 log10, {tail:.2} extrapolated",
+            "true p in 1e-{}..1e-{decade}: {n} features, {near:.2} within 0.3 log10, {within_1:.2} within 1, median error {median:+.2}, {tail:.2} extrapolated",
             decade + 1
         );
     }
-    let (total, near): (usize, f64) = report.iter().fold((0, 0.0), |(t, s), &(_, n, near, _)| {
-        (t + n, s + near * n as f64)
-    });
+    let (total, near): (usize, f64) = report
+        .iter()
+        .fold((0, 0.0), |(t, s), r| (t + r.1, s + r.2 * r.1 as f64));
     eprintln!(
         "all: {total} features, {:.3} within 0.3",
         near / total as f64
     );
-    assert!(total >= 250, "{report:?}");
+    assert!(total >= 200, "{report:?}");
     // Every feature this strong was reached < 10 times and was fitted.
-    for &(_, _, _, tail) in &report {
-        assert!(tail >= 0.95, "{report:?}");
+    for r in &report {
+        assert!(r.3 >= 0.95, "{report:?}");
     }
     // Features reached 10 or more times keep the count and say so.
     let exceed = table.f64s("n_exceed");
@@ -149,16 +172,27 @@ fn tail_pvalues_track_the_t_distribution_on_normal_data() {
             assert_eq!(p_perm[k], (exceed[k] + 1.0) / (B as f64 + 1.0));
         }
     }
-    for &(decade, _, near, _) in &report {
-        let bound = ACCURACY_BOUNDS_PER_DECADE[(decade - 4) as usize];
-        assert!(near >= bound, "decade {decade}: {report:?}");
+    // The goal, 90% within 0.3 log10, is NOT met (BENCHMARKS.md:
+    // 84%, 74%, 66%, 65% per decade from 1e-4 down over 1,184 features):
+    // with B = 2,000 the scale of the tail is estimated from at most 500
+    // exceedances, and its relative error, 1/sqrt(500), times the
+    // observed excess (ln 1e8 - ln 4 ~ 17 at 1e-8) is ~0.33 log10 by
+    // itself. What the method does deliver, asserted here per decade:
+    // no bias to speak of (median error within 0.15 log10), almost every
+    // estimate within one order of magnitude, and the shares within 0.3
+    // measured on this sample (0.80, 0.83, 0.72, 0.70), rounded down by
+    // about 1.5 binomial standard errors.
+    for r in &report {
+        let bound = ACCURACY_BOUNDS_PER_DECADE[(r.0 - 4) as usize];
+        assert!(r.2 >= bound, "decade {}: {report:?}", r.0);
+        assert!(r.4 >= 0.93, "decade {}: {report:?}", r.0);
+        assert!(r.5.abs() <= 0.15, "decade {}: {report:?}", r.0);
     }
 }
 
-/// Shares within 0.3 log10 the method is required to reach per decade of
-/// the true p (1e-5..1e-4, 1e-6..1e-5, 1e-7..1e-6, 1e-8..1e-7); set below
-/// what BENCHMARKS.md measured over many features (see there).
-const ACCURACY_BOUNDS_PER_DECADE: [f64; 4] = [0.0, 0.0, 0.0, 0.0];
+/// Shares within 0.3 log10 required per decade of the true p (1e-5..1e-4,
+/// 1e-6..1e-5, 1e-7..1e-6, 1e-8..1e-7).
+const ACCURACY_BOUNDS_PER_DECADE: [f64; 4] = [0.7, 0.7, 0.6, 0.6];
 
 #[test]
 fn tail_fit_results_do_not_depend_on_threads_chunks_or_maxt_mode() {
@@ -245,4 +279,56 @@ fn tail_fit_option_edges_are_clear_errors() {
     assert_ne!(zero.status.code(), Some(0));
     let stderr = String::from_utf8_lossy(&zero.stderr);
     assert!(stderr.contains("--tail-fit"), "{stderr}");
+}
+
+#[test]
+#[ignore = "measurement for BENCHMARKS.md; prints the accuracy table"]
+fn measure_tail_accuracy() {
+    let dir = tempfile::tempdir().unwrap();
+    let strong: usize = std::env::var("STRONG")
+        .map(|v| v.parse().unwrap())
+        .unwrap_or(2000);
+    let rows = data_in_range(strong, 7);
+    let mut o = tail_options(dir.path());
+    o.maxt = MaxtMode::Single;
+    o.threads = 1;
+    // Cost of the tail pass: the same scan without and with it, one run.
+    o.tail_fit = None;
+    let started = std::time::Instant::now();
+    scan_rows(&rows, &labels(), &o);
+    let without = started.elapsed().as_secs_f64();
+    o.tail_fit = Some(10);
+    let started = std::time::Instant::now();
+    scan_rows(&rows, &labels(), &o);
+    let with = started.elapsed().as_secs_f64();
+    eprintln!(
+        "{strong} features, B = {B}, 1 thread: scan {without:.2} s, with --tail-fit {with:.2} s: {:.0} tail fits per second",
+        strong as f64 / (with - without)
+    );
+    let table = Table::read(&dir.path().join("results.tsv"));
+    let p_perm = table.f64s("p_perm");
+    let labels = labels();
+    let mut errors: Vec<Vec<f64>> = vec![Vec::new(); 4];
+    for (k, row) in rows.iter().enumerate() {
+        let truth = student_p(row, &labels);
+        if !(1e-8..=1e-4).contains(&truth) {
+            continue;
+        }
+        let decade = (-truth.log10()).floor().clamp(4.0, 7.0) as usize - 4;
+        errors[decade].push(p_perm[k].log10() - truth.log10());
+    }
+    let mut all = 0;
+    let mut near_all = 0;
+    for (d, e) in errors.iter_mut().enumerate() {
+        e.sort_by(f64::total_cmp);
+        let near = e.iter().filter(|x| x.abs() <= 0.3).count();
+        let within_1 = e.iter().filter(|x| x.abs() <= 1.0).count() as f64 / e.len() as f64;
+        all += e.len();
+        near_all += near;
+        eprintln!(
+            "1e-{}..1e-{}: n {} within1 {within_1:.3} within0.3 {:.3} median {:+.3} q10 {:+.3} q90 {:+.3}",
+            d + 5, d + 4, e.len(), near as f64 / e.len() as f64, e[e.len() / 2], e[e.len() / 10], e[e.len() * 9 / 10]
+        );
+    }
+    eprintln!("all {all} within0.3 {:.3}", near_all as f64 / all as f64);
 }

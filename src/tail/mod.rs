@@ -74,6 +74,24 @@ impl Default for TailOptions {
     }
 }
 
+impl TailOptions {
+    /// The settings `scan --tail-fit` uses on the reference scale (see
+    /// `reference`): the first fit takes the whole upper quarter of the
+    /// null instead of Knijnenburg's 250 exceedances. On that scale the
+    /// excesses of an adequate reference are exponential over any
+    /// threshold (memorylessness), so a lower threshold costs no bias there,
+    /// and the goodness-of-fit step still lowers N wherever the data say
+    /// otherwise; what it buys is variance: the scale's relative standard
+    /// error is 1/sqrt(N), multiplied by the excess of the observed
+    /// statistic when extrapolating (BENCHMARKS.md, tail accuracy).
+    pub fn for_reference_scale() -> Self {
+        TailOptions {
+            max_exceedances: usize::MAX,
+            ..TailOptions::default()
+        }
+    }
+}
+
 /// A tail-approximated p-value and the fit behind it.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct TailEstimate {
