@@ -57,7 +57,9 @@ pub struct TailOptions {
     /// 1938; for the GPD at shape 0 the regularity conditions hold, Smith
     /// 1985, Biometrika 72:67-90). Keeping the exponential unless the data
     /// reject it removes the shape's variance from the extrapolation, which
-    /// dominates far beyond the data (see DEVELOPERS.md, tail notes).
+    /// dominates far beyond the data (see DEVELOPERS.md, tail notes). Off
+    /// by default (Knijnenburg's free shape); [`TailOptions::for_reference_scale`]
+    /// turns it on at 0.05, where the tail is expected to be exponential.
     pub shape_test_level: f64,
 }
 
@@ -69,7 +71,7 @@ impl Default for TailOptions {
             min_exceedances: 30,
             gof_level: 0.05,
             support_margin: 0.5,
-            shape_test_level: 0.05,
+            shape_test_level: 0.0,
         }
     }
 }
@@ -84,9 +86,13 @@ impl TailOptions {
     /// otherwise; what it buys is variance: the scale's relative standard
     /// error is 1/sqrt(N), multiplied by the excess of the observed
     /// statistic when extrapolating (BENCHMARKS.md, tail accuracy).
+    ///
+    /// And the likelihood-ratio test of an exponential tail at level 0.05:
+    /// on this scale shape 0 is what an adequate reference predicts.
     pub fn for_reference_scale() -> Self {
         TailOptions {
             max_exceedances: usize::MAX,
+            shape_test_level: 0.05,
             ..TailOptions::default()
         }
     }

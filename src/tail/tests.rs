@@ -499,3 +499,47 @@ fn timing_of_tail_pvalue() {
         start.elapsed().as_secs_f64() * 1e2
     );
 }
+
+#[test]
+fn chi_squared_quantile_matches_tables() {
+    // chi^2_1 upper 5% and 1% points, 3.841 and 6.635 (any statistical
+    // table, e.g. Abramowitz & Stegun 26.4; values from memory to 4
+    // digits).
+    assert!((chi_squared_1_quantile(0.95) - 3.841_458_820_694_124).abs() < 1e-9);
+    assert!((chi_squared_1_quantile(0.99) - 6.634_896_601_021_214).abs() < 1e-9);
+}
+
+#[test]
+fn likelihood_ratio_step_tells_exponential_from_short_tails() {
+    // Exceedances drawn from a true exponential keep shape 0 in about
+    // 1 - level of samples (Wilks); from GPD(-0.3), which the free fit
+    // estimates with sd ~0.04 at n = 500 (Smith 1985), shape 0 is
+    // rejected nearly always. 200 samples each: a broken test would fall
+    // far outside these bounds.
+    let opts = TailOptions::for_reference_scale();
+    let mut rng = ChaCha8Rng::seed_from_u64(41);
+    let trials = 200;
+    let mut kept_exponential = 0;
+    let mut errors = Vec::new();
+    for _ in 0..trials {
+        // -ln U is Exp(1): the reference scale of a correct reference.
+        let mut null = gpd_sample(0.0, 1.0, 2000, &mut rng);
+        let p_true: f64 = 1e-6;
+        let estimate = tail_pvalue(&mut null, -p_true.ln(), &opts).expect("fit");
+        kept_exponential += estimate.exponential as usize;
+        errors.push(estimate.p.log10() - p_true.log10());
+    }
+    assert!(kept_exponential >= trials * 88 / 100, "{kept_exponential}");
+    // Exact target: P(Exp(1) > -ln p) = p; the median estimate is on it.
+    errors.sort_by(f64::total_cmp);
+    assert!(errors[trials / 2].abs() < 0.1, "{:?}", errors[trials / 2]);
+
+    let mut rejected = 0;
+    for _ in 0..trials {
+        let mut null = gpd_sample(-0.3, 1.0, 2000, &mut rng);
+        if let Some(estimate) = tail_pvalue(&mut null, 3.0, &opts) {
+            rejected += (!estimate.exponential) as usize;
+        }
+    }
+    assert!(rejected >= trials * 95 / 100, "{rejected}");
+}
