@@ -569,6 +569,7 @@ fn scan_into_out_dir(
                 below,
                 options: crate::tail::TailOptions::for_reference_scale(),
             },
+            pipeline_options.threads,
             stop,
         )?),
         None => None,

@@ -53,6 +53,8 @@ pub struct TailPassCounts {
 
 /// Rows read per seek: candidates close together share one read.
 const WINDOW: usize = 256;
+/// Features fitted per thread between reads.
+const BATCH_PER_THREAD: usize = 64;
 
 /// Runs the tail pass over the spill in `spill_dir` (records in feature
 /// order, record i = feature i of `source`). Sampled relabelings only: with
@@ -62,6 +64,7 @@ pub fn tail_pass(
     source: &mut dyn FeatureSource,
     spill_dir: &Path,
     settings: &TailSettings,
+    threads: usize,
     stop: &AtomicBool,
 ) -> Result<TailPassCounts> {
     let b_total = kernel.relabelings().count as u64;
@@ -90,13 +93,21 @@ pub fn tail_pass(
     if candidates.is_empty() {
         return Ok(counts);
     }
-    let reference = Reference::for_spec(kernel.spec());
+    let Some(reference) = Reference::for_spec(kernel.spec()) else {
+        counts.kept_counted.insert(
+            "no reference distribution for this test".into(),
+            counts.candidates,
+        );
+        return Ok(counts);
+    };
     let n = kernel.spec().units();
     let mut results: Vec<Option<f64>> = vec![None; candidates.len()];
     let mut scratch = KernelScratch::default();
     let mut block = FeatureBlock::default();
-    let mut null = Vec::new();
-    let mut top = Vec::new();
+    // Rows waiting for their fits: (candidate slot, standardized row,
+    // observed kernel statistic).
+    let mut pending: Vec<(usize, Vec<f64>, f64)> = Vec::new();
+    let batch = BATCH_PER_THREAD * threads.max(1);
     let mut next = 0;
     while next < candidates.len() {
         if stop.load(Ordering::Relaxed) {
@@ -139,25 +150,24 @@ pub fn tail_pass(
                 )));
             }
             let z = &outcome.standardized[tested_position[r] * n..(tested_position[r] + 1) * n];
-            let Some(reference) = reference.as_ref() else {
-                *counts
-                    .kept_counted
-                    .entry("no reference distribution for this test".into())
-                    .or_default() += 1;
-                continue;
-            };
-            kernel.relabelled_stats(z, &mut null);
-            match fit_one(reference, &mut null, &mut top, kernel_obs, settings) {
-                Ok(estimate) => {
-                    counts.extrapolated += 1;
-                    counts.exponential += estimate.exponential as u64;
-                    counts.constrained += estimate.constrained as u64;
-                    results[next + slot] = Some(estimate.p);
-                }
-                Err(reason) => *counts.kept_counted.entry(reason.into()).or_default() += 1,
-            }
+            pending.push((next + slot, z.to_vec(), kernel_obs));
         }
         next = last + 1;
+        if pending.len() >= batch || next == candidates.len() {
+            let fits = fit_batch(kernel, &reference, &pending, settings, threads);
+            for ((slot, _, _), fit) in pending.iter().zip(fits) {
+                match fit {
+                    Ok(estimate) => {
+                        counts.extrapolated += 1;
+                        counts.exponential += estimate.exponential as u64;
+                        counts.constrained += estimate.constrained as u64;
+                        results[*slot] = Some(estimate.p);
+                    }
+                    Err(reason) => *counts.kept_counted.entry(reason.into()).or_default() += 1,
+                }
+            }
+            pending.clear();
+        }
     }
     let mut position = 0;
     spill::rewrite_records(spill_dir, &mut |index, record| {
@@ -176,6 +186,47 @@ pub fn tail_pass(
     Ok(counts)
 }
 
+type FitResult = std::result::Result<super::TailEstimate, &'static str>;
+
+/// Fits of `pending` features on up to `threads` threads, in order. Each
+/// fit depends only on its own row, so the split does not matter.
+fn fit_batch(
+    kernel: &Kernel,
+    reference: &Reference,
+    pending: &[(usize, Vec<f64>, f64)],
+    settings: &TailSettings,
+    threads: usize,
+) -> Vec<FitResult> {
+    let fit_part = |part: &[(usize, Vec<f64>, f64)]| -> Vec<FitResult> {
+        let mut null = Vec::new();
+        let mut top = Vec::new();
+        part.iter()
+            .map(|(_, z, observed)| {
+                kernel.relabelled_stats(z, &mut null);
+                fit_one(reference, &mut null, &mut top, *observed, settings)
+            })
+            .collect()
+    };
+    let threads = threads.max(1).min(pending.len().max(1));
+    if threads == 1 {
+        return fit_part(pending);
+    }
+    let per = pending.len().div_ceil(threads);
+    std::thread::scope(|scope| {
+        let handles: Vec<_> = pending
+            .chunks(per)
+            .map(|part| scope.spawn(move || fit_part(part)))
+            .collect();
+        handles
+            .into_iter()
+            .flat_map(|h| {
+                h.join()
+                    .unwrap_or_else(|_| vec![Err("a fitting thread failed"); per])
+            })
+            .collect()
+    })
+}
+
 /// One feature: select its largest relabelled statistics on the kernel
 /// scale (the reference map is monotone, so the order is the same), map
 /// only those, fit. `Err` names why the counted p-value is kept.
@@ -185,7 +236,7 @@ fn fit_one(
     top: &mut Vec<f64>,
     observed: f64,
     settings: &TailSettings,
-) -> std::result::Result<super::TailEstimate, &'static str> {
+) -> FitResult {
     let total = null.len();
     let keep = (settings.options.max_exceedances.min(total / 4) + 1).min(total);
     if null.iter().any(|v| v.is_nan()) {
