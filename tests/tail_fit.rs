@@ -331,4 +331,8 @@ fn measure_tail_accuracy() {
         );
     }
     eprintln!("all {all} within0.3 {:.3}", near_all as f64 / all as f64);
+    let run: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(dir.path().join("run.json")).unwrap())
+            .unwrap();
+    eprintln!("run.json tail_fit: {}", run["tail_fit"]);
 }
