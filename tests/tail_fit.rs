@@ -279,6 +279,27 @@ fn tail_fit_option_edges_are_clear_errors() {
     assert_ne!(zero.status.code(), Some(0));
     let stderr = String::from_utf8_lossy(&zero.stderr);
     assert!(stderr.contains("--tail-fit"), "{stderr}");
+    let sharded = common::riffle(&[
+        "scan",
+        "--matrix",
+        "nowhere.tsv",
+        "--samples",
+        "nowhere.tsv",
+        "--group",
+        "g",
+        "--out",
+        out.to_str().unwrap(),
+        "--tail-fit",
+        "--shard",
+        "1/2",
+    ]);
+    assert_ne!(sharded.status.code(), Some(0));
+    let stderr = String::from_utf8_lossy(&sharded.stderr);
+    assert!(
+        stderr.contains("--tail-fit") && stderr.contains("--shard"),
+        "{stderr}"
+    );
+    assert!(!out.join("results.parquet").exists());
 }
 
 #[test]
@@ -292,6 +313,10 @@ fn measure_tail_accuracy() {
     let mut o = tail_options(dir.path());
     o.maxt = MaxtMode::Single;
     o.threads = 1;
+    if let Ok(perms) = std::env::var("PERMS") {
+        o.perms = perms.parse().unwrap();
+    }
+    let b = o.perms;
     // Cost of the tail pass: the same scan without and with it, one run.
     o.tail_fit = None;
     let started = std::time::Instant::now();
@@ -302,7 +327,7 @@ fn measure_tail_accuracy() {
     scan_rows(&rows, &labels(), &o);
     let with = started.elapsed().as_secs_f64();
     eprintln!(
-        "{strong} features, B = {B}, 1 thread: scan {without:.2} s, with --tail-fit {with:.2} s: {:.0} tail fits per second",
+        "{strong} features, B = {b}, 1 thread: scan {without:.2} s, with --tail-fit {with:.2} s: {:.0} tail fits per second",
         strong as f64 / (with - without)
     );
     let table = Table::read(&dir.path().join("results.tsv"));
@@ -335,4 +360,74 @@ fn measure_tail_accuracy() {
         serde_json::from_str(&std::fs::read_to_string(dir.path().join("run.json")).unwrap())
             .unwrap();
     eprintln!("run.json tail_fit: {}", run["tail_fit"]);
+}
+
+/// Welch t and its two-sided p-value (Welch–Satterthwaite df), from the
+/// textbook formulas on the raw values, with statrs' t distribution.
+fn welch_p(row: &[f64], labels: &[u8]) -> f64 {
+    let pick = |g: u8| -> Vec<f64> {
+        row.iter()
+            .zip(labels)
+            .filter(|(_, &l)| l == g)
+            .map(|(v, _)| *v)
+            .collect()
+    };
+    let (a, b) = (pick(0), pick(1));
+    let mean = |v: &[f64]| v.iter().sum::<f64>() / v.len() as f64;
+    let var = |v: &[f64]| {
+        let m = mean(v);
+        v.iter().map(|x| (x - m) * (x - m)).sum::<f64>() / (v.len() as f64 - 1.0)
+    };
+    let (va, vb) = (var(&a) / a.len() as f64, var(&b) / b.len() as f64);
+    let t = (mean(&b) - mean(&a)) / (va + vb).sqrt();
+    let df =
+        (va + vb).powi(2) / (va * va / (a.len() as f64 - 1.0) + vb * vb / (b.len() as f64 - 1.0));
+    2.0 * StudentsT::new(0.0, 1.0, df).unwrap().sf(t.abs())
+}
+
+#[test]
+fn tail_fit_serves_welch_and_rank_sum() {
+    let rows = data_in_range(120, 5);
+    let labels = labels();
+    for test in [TestKind::Welch, TestKind::RankSum] {
+        let dir = tempfile::tempdir().unwrap();
+        let mut o = tail_options(dir.path());
+        o.test = test;
+        scan_rows(&rows, &labels, &o);
+        let table = Table::read(&dir.path().join("results.tsv"));
+        let p = table.f64s("p_perm");
+        let source = table.text("p_source");
+        assert!(p.iter().all(|&v| v > 0.0), "{test:?}");
+        let tails = source.iter().filter(|s| *s == "tail").count();
+        // run.json accounts for every candidate.
+        let run: serde_json::Value =
+            serde_json::from_str(&std::fs::read_to_string(dir.path().join("run.json")).unwrap())
+                .unwrap();
+        let counts = &run["tail_fit"]["counts"];
+        let kept: u64 = counts["kept_counted"]
+            .as_object()
+            .unwrap()
+            .values()
+            .map(|v| v.as_u64().unwrap())
+            .sum();
+        assert_eq!(
+            counts["extrapolated"].as_u64().unwrap() + kept,
+            counts["candidates"].as_u64().unwrap()
+        );
+        assert_eq!(counts["extrapolated"].as_u64().unwrap(), tails as u64);
+        assert!(tails >= 100, "{test:?}: {tails} of 120 extrapolated");
+        if test == TestKind::Welch {
+            // Equal variances: the Welch p-value is the truth here too;
+            // the estimates centre on it.
+            let mut errors: Vec<f64> = rows
+                .iter()
+                .enumerate()
+                .filter(|(k, _)| source[*k] == "tail")
+                .map(|(k, row)| p[k].log10() - welch_p(row, &labels).log10())
+                .collect();
+            errors.sort_by(f64::total_cmp);
+            let median = errors[errors.len() / 2];
+            assert!(median.abs() <= 0.2, "median log10 error {median}");
+        }
+    }
 }
