@@ -543,3 +543,35 @@ fn likelihood_ratio_step_tells_exponential_from_short_tails() {
     }
     assert!(rejected >= trials * 95 / 100, "{rejected}");
 }
+
+#[test]
+#[ignore = "timing; run with --ignored --nocapture"]
+fn timing_of_reference_scale_parts() {
+    // Where a scan's tail fit spends its time: the fit on the reference
+    // scale (Exp(1) nulls) and the reference tail evaluations.
+    let mut rng = ChaCha8Rng::seed_from_u64(2);
+    for b in [2000usize, 10_000] {
+        let nulls: Vec<Vec<f64>> = (0..50).map(|_| gpd_sample(0.0, 1.0, b, &mut rng)).collect();
+        let opts = TailOptions::for_reference_scale();
+        let mut buffer = vec![0.0; b];
+        let start = std::time::Instant::now();
+        for call in 0..500 {
+            buffer.copy_from_slice(&nulls[call % nulls.len()]);
+            std::hint::black_box(tail_pvalue(&mut buffer, 18.0, &opts));
+        }
+        eprintln!(
+            "B = {b}: tail_pvalue on the reference scale {:.0} us/call",
+            start.elapsed().as_secs_f64() * 1e6 / 500.0
+        );
+        let dist = statrs::distribution::StudentsT::new(0.0, 1.0, 38.0).unwrap();
+        let start = std::time::Instant::now();
+        for k in 0..b / 4 {
+            std::hint::black_box(-dist.sf(1.0 + k as f64 * 1e-3).ln());
+        }
+        eprintln!(
+            "B = {b}: {} t tail evaluations {:.0} us",
+            b / 4,
+            start.elapsed().as_secs_f64() * 1e6
+        );
+    }
+}
