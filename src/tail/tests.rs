@@ -575,3 +575,42 @@ fn timing_of_reference_scale_parts() {
         );
     }
 }
+
+#[test]
+fn reference_scale_is_the_t_tail_of_the_textbook_statistic() {
+    // For the pooled t test the map must give -ln P(T_{n-2} >= t) at the
+    // t of the labelling, with t from the textbook formula on the raw
+    // values and the tail from statrs (a general-purpose library).
+    use crate::stats::prepare::{PrepScratch, TestSpec};
+    use crate::stats::{Side, Sizes, TestKind};
+    use statrs::distribution::StudentsT;
+    let mut rng = ChaCha8Rng::seed_from_u64(8);
+    let (na, nb) = (7usize, 9usize);
+    let labels: Vec<u8> = (0..na + nb).map(|i| (i >= na) as u8).collect();
+    for side in [Side::Greater, Side::Both] {
+        let spec = TestSpec::two_group(TestKind::Student, side, Sizes { n_a: na, n_b: nb });
+        let reference = Reference::for_spec(&spec).unwrap();
+        for shift in [0.3, 1.5, 3.0] {
+            let raw: Vec<f64> = normal_sample(na + nb, &mut rng)
+                .iter()
+                .zip(&labels)
+                .map(|(v, &l)| v + shift * l as f64)
+                .collect();
+            let mut z = vec![0.0; na + nb];
+            let prepared = spec.prepare(&raw, &labels, &mut z, &mut PrepScratch::default());
+            let (a, b): (Vec<f64>, Vec<f64>) = (raw[..na].to_vec(), raw[na..].to_vec());
+            let mean = |v: &[f64]| v.iter().sum::<f64>() / v.len() as f64;
+            let ss = |v: &[f64]| v.iter().map(|x| (x - mean(v)).powi(2)).sum::<f64>();
+            let pooled = (ss(&a) + ss(&b)) / (na + nb - 2) as f64;
+            let t = (mean(&b) - mean(&a)) / (pooled * (1.0 / na as f64 + 1.0 / nb as f64)).sqrt();
+            let oriented = if side == Side::Both { t.abs() } else { t };
+            let dist = StudentsT::new(0.0, 1.0, (na + nb - 2) as f64).unwrap();
+            let expected = -dist.sf(oriented).ln();
+            let got = reference.score(prepared.kernel_obs);
+            assert!(
+                (got - expected).abs() <= 1e-9 * expected.abs().max(1.0),
+                "{side:?} shift {shift}: {got} vs {expected}"
+            );
+        }
+    }
+}
