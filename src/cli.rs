@@ -139,6 +139,12 @@ pub struct ScanArgs {
     /// relabelings (columns p_pooled, q_pooled).
     #[arg(long)]
     pub pooled_null: bool,
+    /// Tail approximation: features reached by fewer than EXCEED relabelings
+    /// (10 when given without a value) get a p-value extrapolated from a
+    /// generalized Pareto fit to their largest relabelled statistics
+    /// (p_source = tail in the results).
+    #[arg(long, value_name = "EXCEED", num_args = 0..=1, default_missing_value = "10")]
+    pub tail_fit: Option<u64>,
     /// No progress output.
     #[arg(long)]
     pub quiet: bool,
@@ -250,6 +256,7 @@ impl ScanArgs {
             shard: self.shard,
             skip_if_unchanged: self.skip_if_unchanged,
             checkpoint_seconds: self.checkpoint_seconds,
+            tail_fit: self.tail_fit,
         }
     }
 }

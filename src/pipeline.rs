@@ -60,6 +60,19 @@ pub fn run(
     sink: &mut dyn ChunkSink,
     progress: Progress<'_>,
 ) -> Result<PipelineStats> {
+    run_with(&mut *source, kernel, options, stop, sink, progress)
+}
+
+/// [`run`] on a borrowed source, which the caller keeps (a later pass may
+/// seek in it again).
+pub fn run_with(
+    source: &mut dyn FeatureSource,
+    kernel: Arc<Kernel>,
+    options: &PipelineOptions,
+    stop: &AtomicBool,
+    sink: &mut dyn ChunkSink,
+    progress: Progress<'_>,
+) -> Result<PipelineStats> {
     let started = Instant::now();
     let threads = options.threads.max(1);
     let chunk_rows = options.chunk_rows.max(1);

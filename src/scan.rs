@@ -77,6 +77,11 @@ pub struct ScanOptions {
     /// Seconds between checkpoints of the first pass (see `crate::resume`).
     #[serde(default = "default_checkpoint_seconds")]
     pub checkpoint_seconds: f64,
+    /// Tail approximation: features reached by fewer than this many of
+    /// the B sampled relabelings get a generalized Pareto p-value
+    /// (`crate::tail`); off when absent.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub tail_fit: Option<u64>,
 }
 
 fn default_checkpoint_seconds() -> f64 {
@@ -137,6 +142,7 @@ impl ScanOptions {
             shard: None,
             skip_if_unchanged: false,
             checkpoint_seconds: default_checkpoint_seconds(),
+            tail_fit: None,
         }
     }
 }
@@ -428,8 +434,8 @@ fn scan_into_out_dir(
             options.quiet,
             if step_down { "standardize" } else { "scan" },
         );
-        stats = pipeline::run(
-            source,
+        stats = pipeline::run_with(
+            &mut *source,
             kernel.clone(),
             &pipeline_options,
             stop,
@@ -515,7 +521,7 @@ fn scan_into_out_dir(
                 .ok_or_else(|| RiffleError::Internal("no sorter in step-down mode".into()))?;
             let mut reporter = ProgressReporter::new(tested, options.quiet, "relabel");
             let (null_max, histogram) = rank_pass(
-                kernel,
+                kernel.clone(),
                 sorter.finish()?,
                 pipeline_options.threads,
                 pipeline_options.chunk_rows,
@@ -554,7 +560,23 @@ fn scan_into_out_dir(
         return Err(RiffleError::Interrupted);
     }
 
-    let finalized = finalize(options, &spill_dir, &null_max, pooled.as_ref())?;
+    let tail = match options.tail_fit {
+        Some(below) => Some(crate::tail::tail_pass(
+            &kernel,
+            &mut *source,
+            &spill_dir,
+            &crate::tail::TailSettings {
+                below,
+                options: crate::tail::TailOptions::for_reference_scale(),
+            },
+            pipeline_options.threads,
+            stop,
+        )?),
+        None => None,
+    };
+
+    let mut finalized = finalize(options, &spill_dir, &null_max, pooled.as_ref())?;
+    finalized.tail = tail;
     let seconds = started.elapsed().as_secs_f64();
     let summary = ScanSummary {
         features: stats.features,
@@ -782,6 +804,16 @@ fn validate(options: &ScanOptions) -> Result<()> {
             "--checkpoint-seconds must be a number of seconds, 0 or more",
         ));
     }
+    if options.tail_fit == Some(0) {
+        return Err(RiffleError::options(
+            "--tail-fit 0: the number of relabelings below which a tail is fitted must be at least 1 (10 is usual)",
+        ));
+    }
+    if options.tail_fit.is_some() && options.shard.is_some() {
+        return Err(RiffleError::options(
+            "--tail-fit cannot be combined with --shard yet: run the tail fit on a whole scan",
+        ));
+    }
     if options.memory_bytes < 16 << 20 {
         return Err(RiffleError::options("--memory must be at least 16M"));
     }
@@ -995,6 +1027,8 @@ pub(crate) struct Finalized {
     pooled: Option<AdjustSummary>,
     pub(crate) fwer_hits_05: u64,
     pub(crate) results_path: PathBuf,
+    /// What the tail pass did (scans with `tail_fit`).
+    pub(crate) tail: Option<crate::tail::TailPassCounts>,
 }
 
 pub(crate) fn hits(summary: &AdjustSummary, method: Method) -> [u64; 3] {
@@ -1187,6 +1221,7 @@ pub(crate) fn finalize(
         pooled: pooled_summary,
         fwer_hits_05,
         results_path,
+        tail: None,
     })
 }
 
@@ -1246,6 +1281,13 @@ pub(crate) fn write_run_record(
         "provenance": provenance,
         "results": crate::provenance::results_entry(&finalized.results_path)?,
     });
+    if let Some(tail) = &finalized.tail {
+        record["tail_fit"] = serde_json::json!({
+            "below": options.tail_fit,
+            "counts": tail,
+            "p_perm": "tail estimate where p_source is tail; n_exceed keeps the count",
+        });
+    }
     if !extra.is_null() {
         record["shards"] = extra;
     }

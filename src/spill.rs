@@ -35,6 +35,9 @@ pub enum PSource {
     Counted = 0,
     /// Every distinct relabelling enumerated.
     Exact = 1,
+    /// Extrapolated from a generalized Pareto fit to the feature's largest
+    /// relabelled statistics (`crate::tail`); `exceed` keeps the count.
+    Tail = 3,
 }
 
 impl PSource {
@@ -42,12 +45,14 @@ impl PSource {
         match self {
             PSource::Counted => "counted",
             PSource::Exact => "exact",
+            PSource::Tail => "tail",
         }
     }
     fn from_code(code: u8) -> Option<Self> {
         match code {
             0 => Some(PSource::Counted),
             1 => Some(PSource::Exact),
+            3 => Some(PSource::Tail),
             _ => None,
         }
     }

@@ -118,6 +118,16 @@ impl Kernel {
         &self.spec
     }
 
+    /// Every relabelled kernel statistic of one standardized row, in f64:
+    /// for the few features whose null tail is fitted (`crate::tail`).
+    pub fn relabelled_stats(&self, z: &[f64], out: &mut Vec<f64>) {
+        out.clear();
+        out.extend((0..self.relabel.count).map(|b| {
+            self.spec
+                .kernel_stat_with(z, assignment(&self.spec, &self.relabel, b))
+        }));
+    }
+
     /// Units per feature (samples, or pairs).
     fn units(&self) -> usize {
         self.spec.units()

@@ -13,12 +13,16 @@
 mod exact;
 mod goodness;
 mod gpd;
+mod reference;
+mod scan_pass;
 #[cfg(test)]
 mod tests;
 
 pub use exact::{binomial_cdf, phipson_smyth_exact};
 pub use goodness::{ad_critical_value, anderson_darling, gpd_fit_accepted};
 pub use gpd::{fit_gpd, fit_gpd_bounded, gpd_cdf, gpd_ln_sf, gpd_log_likelihood, gpd_sf, GpdFit};
+pub use reference::Reference;
+pub use scan_pass::{tail_pass, TailPassCounts, TailSettings};
 
 /// How the tail is chosen and judged.
 #[derive(Debug, Clone, Copy, PartialEq)]
@@ -46,6 +50,17 @@ pub struct TailOptions {
     /// smallest errors there (median log10 error -0.1..+0.3 for p 1e-4..1e-6,
     /// erring conservative further out); 0.1 underestimated by ~2 decades.
     pub support_margin: f64,
+    /// Level of the likelihood-ratio test of shape = 0 (exponential tail)
+    /// against a free shape, at the threshold the goodness-of-fit step
+    /// chose; 0 always keeps the free shape. Nested models, one parameter
+    /// apart: 2 (l_free - l_exp) is asymptotically chi^2 with 1 df (Wilks
+    /// 1938; for the GPD at shape 0 the regularity conditions hold, Smith
+    /// 1985, Biometrika 72:67-90). Keeping the exponential unless the data
+    /// reject it removes the shape's variance from the extrapolation, which
+    /// dominates far beyond the data (see DEVELOPERS.md, tail notes). Off
+    /// by default (Knijnenburg's free shape); [`TailOptions::for_reference_scale`]
+    /// turns it on at 0.05, where the tail is expected to be exponential.
+    pub shape_test_level: f64,
 }
 
 impl Default for TailOptions {
@@ -56,6 +71,29 @@ impl Default for TailOptions {
             min_exceedances: 30,
             gof_level: 0.05,
             support_margin: 0.5,
+            shape_test_level: 0.0,
+        }
+    }
+}
+
+impl TailOptions {
+    /// The settings `scan --tail-fit` uses on the reference scale (see
+    /// `reference`): the first fit takes the whole upper quarter of the
+    /// null instead of Knijnenburg's 250 exceedances. On that scale the
+    /// excesses of an adequate reference are exponential over any
+    /// threshold (memorylessness), so a lower threshold costs no bias there,
+    /// and the goodness-of-fit step still lowers N wherever the data say
+    /// otherwise; what it buys is variance: the scale's relative standard
+    /// error is 1/sqrt(N), multiplied by the excess of the observed
+    /// statistic when extrapolating (BENCHMARKS.md, tail accuracy).
+    ///
+    /// And the likelihood-ratio test of an exponential tail at level 0.05:
+    /// on this scale shape 0 is what an adequate reference predicts.
+    pub fn for_reference_scale() -> Self {
+        TailOptions {
+            max_exceedances: usize::MAX,
+            shape_test_level: 0.05,
+            ..TailOptions::default()
         }
     }
 }
@@ -72,6 +110,8 @@ pub struct TailEstimate {
     pub exceedances: usize,
     /// Whether the support constraint changed the fit.
     pub constrained: bool,
+    /// Whether the likelihood-ratio step kept the exponential (shape 0).
+    pub exponential: bool,
 }
 
 /// Tail p-value for one feature ("larger = more extreme"). `null` holds its
@@ -108,7 +148,28 @@ pub fn tail_pvalue(null: &mut [f64], observed: f64, opts: &TailOptions) -> Optio
         return None;
     }
     let top: &[f64] = top;
+    tail_pvalue_of_top(top, total, observed, opts)
+}
 
+/// [`tail_pvalue`] from the `max_exceedances + 1` largest of `total` null
+/// statistics, sorted DESCENDING (callers that can select them cheaply, or
+/// transform only them, come in here). `None` as for [`tail_pvalue`].
+pub fn tail_pvalue_of_top(
+    top: &[f64],
+    total: usize,
+    observed: f64,
+    opts: &TailOptions,
+) -> Option<TailEstimate> {
+    let min_exceedances = opts.min_exceedances.max(3);
+    let largest_fit = opts.max_exceedances.min(total / 4);
+    if largest_fit < min_exceedances
+        || top.len() <= largest_fit
+        || !observed.is_finite()
+        || !top[0].is_finite()
+        || top.iter().any(|v| v.is_nan())
+    {
+        return None;
+    }
     let step = opts.step.max(1);
     let mut excesses = Vec::with_capacity(largest_fit);
     let mut target = largest_fit;
@@ -128,7 +189,7 @@ pub fn tail_pvalue(null: &mut [f64], observed: f64, opts: &TailOptions) -> Optio
         excesses.clear();
         excesses.extend(top[..count].iter().rev().map(|v| v - threshold));
         if let Some(estimate) = fit_and_judge(&excesses, observed - threshold, opts) {
-            let (fit, constrained) = estimate;
+            let (fit, constrained, exponential) = estimate;
             let tail = gpd_sf(observed - threshold, fit.shape, fit.scale);
             let p = (count as f64 / total as f64 * tail).max(f64::MIN_POSITIVE);
             return Some(TailEstimate {
@@ -138,6 +199,7 @@ pub fn tail_pvalue(null: &mut [f64], observed: f64, opts: &TailOptions) -> Optio
                 threshold,
                 exceedances: count,
                 constrained,
+                exponential,
             });
         }
         target = count.saturating_sub(step);
@@ -145,19 +207,55 @@ pub fn tail_pvalue(null: &mut [f64], observed: f64, opts: &TailOptions) -> Optio
     None
 }
 
-/// Fit (constrained if needed) and keep it only if Anderson–Darling accepts.
+/// Knijnenburg's acceptance step and the model inside the GPD family:
+/// Anderson–Darling judges the free fit (does the GPD family describe these
+/// excesses?); the likelihood-ratio test then keeps the exponential unless
+/// it is rejected; a free fit with a negative shape whose support ends
+/// before the observed excess is refitted with the support constraint.
 fn fit_and_judge(
     ascending_excesses: &[f64],
     observed_excess: f64,
     opts: &TailOptions,
-) -> Option<(GpdFit, bool)> {
+) -> Option<(GpdFit, bool, bool)> {
     let free = fit_gpd(ascending_excesses)?;
+    if !gpd_fit_accepted(ascending_excesses, free.shape, free.scale, opts.gof_level) {
+        return None;
+    }
+    if opts.shape_test_level > 0.0 && opts.shape_test_level < 1.0 {
+        let n = ascending_excesses.len() as f64;
+        let mean = ascending_excesses.iter().sum::<f64>() / n;
+        let exponential = GpdFit {
+            shape: 0.0,
+            scale: mean,
+            log_likelihood: gpd_log_likelihood(ascending_excesses, 0.0, mean),
+        };
+        let statistic = 2.0 * (free.log_likelihood - exponential.log_likelihood);
+        if statistic <= chi_squared_1_quantile(1.0 - opts.shape_test_level) {
+            return Some((exponential, false, true));
+        }
+    }
     let needed_end = observed_excess * (1.0 + opts.support_margin.max(0.0));
-    let (fit, constrained) = if free.upper_endpoint() < needed_end {
-        (fit_gpd_bounded(ascending_excesses, needed_end)?, true)
+    if free.upper_endpoint() < needed_end {
+        let bounded = fit_gpd_bounded(ascending_excesses, needed_end)?;
+        // The constrained fit must still describe the data.
+        gpd_fit_accepted(
+            ascending_excesses,
+            bounded.shape,
+            bounded.scale,
+            opts.gof_level,
+        )
+        .then_some((bounded, true, false))
     } else {
-        (free, false)
-    };
-    gpd_fit_accepted(ascending_excesses, fit.shape, fit.scale, opts.gof_level)
-        .then_some((fit, constrained))
+        Some((free, false, false))
+    }
+}
+
+/// Quantile of chi^2 with 1 df: the square of the normal quantile at
+/// (1 + q) / 2.
+fn chi_squared_1_quantile(q: f64) -> f64 {
+    use statrs::distribution::{ContinuousCDF, Normal};
+    let z = Normal::new(0.0, 1.0)
+        .map(|n| n.inverse_cdf(0.5 + 0.5 * q))
+        .unwrap_or(f64::NAN);
+    z * z
 }

@@ -499,3 +499,118 @@ fn timing_of_tail_pvalue() {
         start.elapsed().as_secs_f64() * 1e2
     );
 }
+
+#[test]
+fn chi_squared_quantile_matches_tables() {
+    // chi^2_1 upper 5% and 1% points, 3.841 and 6.635 (any statistical
+    // table, e.g. Abramowitz & Stegun 26.4; values from memory to 4
+    // digits).
+    assert!((chi_squared_1_quantile(0.95) - 3.841_458_820_694_124).abs() < 1e-9);
+    assert!((chi_squared_1_quantile(0.99) - 6.634_896_601_021_214).abs() < 1e-9);
+}
+
+#[test]
+fn likelihood_ratio_step_tells_exponential_from_short_tails() {
+    // Exceedances drawn from a true exponential keep shape 0 in about
+    // 1 - level of samples (Wilks); from GPD(-0.3), which the free fit
+    // estimates with sd ~0.04 at n = 500 (Smith 1985), shape 0 is
+    // rejected nearly always. 200 samples each: a broken test would fall
+    // far outside these bounds.
+    let opts = TailOptions::for_reference_scale();
+    let mut rng = ChaCha8Rng::seed_from_u64(41);
+    let trials = 200;
+    let mut kept_exponential = 0;
+    let mut errors = Vec::new();
+    for _ in 0..trials {
+        // -ln U is Exp(1): the reference scale of a correct reference.
+        let mut null = gpd_sample(0.0, 1.0, 2000, &mut rng);
+        let p_true: f64 = 1e-6;
+        let estimate = tail_pvalue(&mut null, -p_true.ln(), &opts).expect("fit");
+        kept_exponential += estimate.exponential as usize;
+        errors.push(estimate.p.log10() - p_true.log10());
+    }
+    assert!(kept_exponential >= trials * 88 / 100, "{kept_exponential}");
+    // Exact target: P(Exp(1) > -ln p) = p; the median estimate is on it.
+    errors.sort_by(f64::total_cmp);
+    assert!(errors[trials / 2].abs() < 0.1, "{:?}", errors[trials / 2]);
+
+    let mut rejected = 0;
+    for _ in 0..trials {
+        let mut null = gpd_sample(-0.3, 1.0, 2000, &mut rng);
+        if let Some(estimate) = tail_pvalue(&mut null, 3.0, &opts) {
+            rejected += (!estimate.exponential) as usize;
+        }
+    }
+    assert!(rejected >= trials * 95 / 100, "{rejected}");
+}
+
+#[test]
+#[ignore = "timing; run with --ignored --nocapture"]
+fn timing_of_reference_scale_parts() {
+    // Where a scan's tail fit spends its time: the fit on the reference
+    // scale (Exp(1) nulls) and the reference tail evaluations.
+    let mut rng = ChaCha8Rng::seed_from_u64(2);
+    for b in [2000usize, 10_000] {
+        let nulls: Vec<Vec<f64>> = (0..50).map(|_| gpd_sample(0.0, 1.0, b, &mut rng)).collect();
+        let opts = TailOptions::for_reference_scale();
+        let mut buffer = vec![0.0; b];
+        let start = std::time::Instant::now();
+        for call in 0..500 {
+            buffer.copy_from_slice(&nulls[call % nulls.len()]);
+            std::hint::black_box(tail_pvalue(&mut buffer, 18.0, &opts));
+        }
+        eprintln!(
+            "B = {b}: tail_pvalue on the reference scale {:.0} us/call",
+            start.elapsed().as_secs_f64() * 1e6 / 500.0
+        );
+        let dist = statrs::distribution::StudentsT::new(0.0, 1.0, 38.0).unwrap();
+        let start = std::time::Instant::now();
+        for k in 0..b / 4 {
+            std::hint::black_box(-dist.sf(1.0 + k as f64 * 1e-3).ln());
+        }
+        eprintln!(
+            "B = {b}: {} t tail evaluations {:.0} us",
+            b / 4,
+            start.elapsed().as_secs_f64() * 1e6
+        );
+    }
+}
+
+#[test]
+fn reference_scale_is_the_t_tail_of_the_textbook_statistic() {
+    // For the pooled t test the map must give -ln P(T_{n-2} >= t) at the
+    // t of the labelling, with t from the textbook formula on the raw
+    // values and the tail from statrs (a general-purpose library).
+    use crate::stats::prepare::{PrepScratch, TestSpec};
+    use crate::stats::{Side, Sizes, TestKind};
+    use statrs::distribution::StudentsT;
+    let mut rng = ChaCha8Rng::seed_from_u64(8);
+    let (na, nb) = (7usize, 9usize);
+    let labels: Vec<u8> = (0..na + nb).map(|i| (i >= na) as u8).collect();
+    for side in [Side::Greater, Side::Both] {
+        let spec = TestSpec::two_group(TestKind::Student, side, Sizes { n_a: na, n_b: nb });
+        let reference = Reference::for_spec(&spec).unwrap();
+        for shift in [0.3, 1.5, 3.0] {
+            let raw: Vec<f64> = normal_sample(na + nb, &mut rng)
+                .iter()
+                .zip(&labels)
+                .map(|(v, &l)| v + shift * l as f64)
+                .collect();
+            let mut z = vec![0.0; na + nb];
+            let prepared = spec.prepare(&raw, &labels, &mut z, &mut PrepScratch::default());
+            let (a, b): (Vec<f64>, Vec<f64>) = (raw[..na].to_vec(), raw[na..].to_vec());
+            let mean = |v: &[f64]| v.iter().sum::<f64>() / v.len() as f64;
+            let ss = |v: &[f64]| v.iter().map(|x| (x - mean(v)).powi(2)).sum::<f64>();
+            let pooled = (ss(&a) + ss(&b)) / (na + nb - 2) as f64;
+            let t = (mean(&b) - mean(&a)) / (pooled * (1.0 / na as f64 + 1.0 / nb as f64)).sqrt();
+            let oriented = if side == Side::Both { t.abs() } else { t };
+            let dist = StudentsT::new(0.0, 1.0, (na + nb - 2) as f64).unwrap();
+            let expected = -dist.sf(oriented).ln();
+            let got = reference.score(prepared.kernel_obs);
+            assert!(
+                (got - expected).abs() <= 1e-9 * expected.abs().max(1.0),
+                "{side:?} shift {shift}: {got} vs {expected}"
+            );
+        }
+    }
+}
