@@ -27,11 +27,14 @@ pub use scan_pass::{tail_pass, TailPassCounts, TailSettings};
 /// How the tail is chosen and judged.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct TailOptions {
-    /// Exceedances used in the first fit (Knijnenburg et al. start at 250).
-    /// Never more than a quarter of the null statistics: the GPD describes
-    /// excesses over a HIGH threshold (Pickands 1975), and the upper quarter
-    /// is as low as we let it go.
+    /// Exceedances used in the first fit (Knijnenburg et al. start at 250),
+    /// and never more than `max_share` of the null statistics.
     pub max_exceedances: usize,
+    /// Largest share of the null the first fit may take: the GPD describes
+    /// excesses over a HIGH threshold (Pickands 1975), so on the raw
+    /// statistic the upper quarter is as low as we let it go; on the
+    /// reference scale (see `for_reference_scale`) half.
+    pub max_share: f64,
     /// How many exceedances to drop after a rejected fit (Knijnenburg: 10).
     pub step: usize,
     /// Fewest exceedances worth fitting. Two parameters from fewer than ~30
@@ -67,6 +70,7 @@ impl Default for TailOptions {
     fn default() -> Self {
         TailOptions {
             max_exceedances: 250,
+            max_share: 0.25,
             step: 10,
             min_exceedances: 30,
             gof_level: 0.05,
@@ -78,23 +82,34 @@ impl Default for TailOptions {
 
 impl TailOptions {
     /// The settings `scan --tail-fit` uses on the reference scale (see
-    /// `reference`): the first fit takes the whole upper quarter of the
-    /// null instead of Knijnenburg's 250 exceedances. On that scale the
-    /// excesses of an adequate reference are exponential over any
-    /// threshold (memorylessness), so a lower threshold costs no bias there,
-    /// and the goodness-of-fit step still lowers N wherever the data say
-    /// otherwise; what it buys is variance: the scale's relative standard
-    /// error is 1/sqrt(N), multiplied by the excess of the observed
-    /// statistic when extrapolating (BENCHMARKS.md, tail accuracy).
+    /// `reference`): the first fit takes the whole upper half of the null
+    /// instead of Knijnenburg's 250 exceedances. On that scale the excesses
+    /// of an adequate reference are exponential over any threshold
+    /// (memorylessness), so a lower threshold costs no bias there, and the
+    /// goodness-of-fit step still lowers N wherever the data say otherwise;
+    /// what it buys is variance: the scale's relative standard error is
+    /// 1/sqrt(N), multiplied by the excess of the observed statistic when
+    /// extrapolating (BENCHMARKS.md, tail accuracy).
     ///
-    /// And the likelihood-ratio test of an exponential tail at level 0.05:
-    /// on this scale shape 0 is what an adequate reference predicts.
+    /// And the likelihood-ratio test of an exponential tail at level 0.01:
+    /// on this scale shape 0 is what an adequate reference predicts, and the
+    /// costs are lopsided — a wrongly kept exponential errs by the small
+    /// curvature the test could not see, a wrongly freed shape extrapolates
+    /// with the shape's full variance (often by orders of magnitude), so
+    /// the exponential is given up only on strong evidence.
     pub fn for_reference_scale() -> Self {
         TailOptions {
             max_exceedances: usize::MAX,
-            shape_test_level: 0.05,
+            max_share: 0.5,
+            shape_test_level: 0.01,
             ..TailOptions::default()
         }
+    }
+
+    /// Most exceedances the first fit of `total` null statistics may take.
+    pub fn largest_fit(&self, total: usize) -> usize {
+        self.max_exceedances
+            .min((total as f64 * self.max_share) as usize)
     }
 }
 
@@ -131,7 +146,7 @@ pub fn tail_pvalue(null: &mut [f64], observed: f64, opts: &TailOptions) -> Optio
         return None;
     }
     let min_exceedances = opts.min_exceedances.max(3);
-    let largest_fit = opts.max_exceedances.min(total / 4);
+    let largest_fit = opts.largest_fit(total);
     if largest_fit < min_exceedances {
         return None;
     }
@@ -161,7 +176,7 @@ pub fn tail_pvalue_of_top(
     opts: &TailOptions,
 ) -> Option<TailEstimate> {
     let min_exceedances = opts.min_exceedances.max(3);
-    let largest_fit = opts.max_exceedances.min(total / 4);
+    let largest_fit = opts.largest_fit(total);
     if largest_fit < min_exceedances
         || top.len() <= largest_fit
         || !observed.is_finite()

@@ -238,7 +238,7 @@ fn fit_one(
     settings: &TailSettings,
 ) -> FitResult {
     let total = null.len();
-    let keep = (settings.options.max_exceedances.min(total / 4) + 1).min(total);
+    let keep = (settings.options.largest_fit(total) + 1).min(total);
     if null.iter().any(|v| v.is_nan()) {
         return Err("relabelled statistic not a number");
     }
