@@ -138,6 +138,13 @@ pub struct ScanArgs {
     /// relabelings (columns p_pooled, q_pooled).
     #[arg(long)]
     pub pooled_null: bool,
+    /// Features with missing values (NaN, NA, empty cells) are tested on
+    /// their observed samples when each group keeps at least this many
+    /// (two-group tests; at least 2). Three keeps two degrees of freedom in
+    /// each group's variance and more than one relabelling of the observed
+    /// values; fewer are reported untested ("too few observed values").
+    #[arg(long, default_value_t = crate::stats::prepare::DEFAULT_MIN_OBSERVED)]
+    pub min_observed: usize,
     /// No progress output.
     #[arg(long)]
     pub quiet: bool,
@@ -244,6 +251,7 @@ impl ScanArgs {
             storey_lambda: self.storey_lambda,
             maxt: self.maxt,
             pooled_null: self.pooled_null,
+            min_observed: self.min_observed,
             quiet: self.quiet,
             report: !self.no_report,
             shard: self.shard,

@@ -1,0 +1,96 @@
+//! Rows with missing values in the kernel: the GEMM of the standardized
+//! row (0 where missing) and of its 0/1 mask against the same weights gives,
+//! per relabelling, the group-B sum and the observed group-B count; with
+//! the squares (Welch) the group-B sum of squares. The finisher turns them
+//! into the statistic on the complete-data scale (`stats::masked`), in f32,
+//! with ill-conditioned entries NaN so that they are recomputed in f64.
+
+use super::{orient_all, Kernel, F32_UNIT};
+use crate::stats::TestKind;
+
+impl Kernel {
+    /// Turns masked sums (`sums`: group-B sums, `masks`: observed group-B
+    /// counts, `squares`: group-B sums of squares, Welch only) of a row with
+    /// `observed` values into oriented kernel statistics, in place.
+    pub(super) fn masked_tile(
+        &self,
+        sums: &mut [f32],
+        squares: &[f32],
+        masks: &[f32],
+        observed: usize,
+    ) {
+        let n = observed as f32;
+        let big_n = self.spec.sizes.n() as f32;
+        let (big_na, big_nb) = (self.spec.sizes.n_a as f32, self.spec.sizes.n_b as f32);
+        let spread = (big_na * big_nb / big_n).sqrt();
+        match self.spec.test {
+            TestKind::Welch => {
+                for ((v, &q1), &nb) in sums.iter_mut().zip(squares).zip(masks) {
+                    let na = n - nb;
+                    if na < 2.0 || nb < 2.0 {
+                        *v = 0.0;
+                        continue;
+                    }
+                    let s1 = *v;
+                    let s1sq = s1 * s1;
+                    let q0 = (n - 1.0) - q1;
+                    let ss_b = q1 - s1sq / nb;
+                    let ss_a = q0 - s1sq / na;
+                    let conditioned = (ss_b > 1e-2 * q1) & (ss_a > 1e-2 * q0);
+                    let t = (s1 / nb + s1 / na)
+                        / (ss_a / ((na - 1.0) * na) + ss_b / ((nb - 1.0) * nb)).sqrt();
+                    *v = if conditioned { t } else { f32::NAN };
+                }
+            }
+            TestKind::RankSum => {
+                for (v, &nb) in sums.iter_mut().zip(masks) {
+                    let na = n - nb;
+                    *v = if na < 1.0 || nb < 1.0 {
+                        0.0
+                    } else {
+                        *v * (spread / (na * nb / n).sqrt())
+                    };
+                }
+            }
+            _ => {
+                for (v, &nb) in sums.iter_mut().zip(masks) {
+                    let na = n - nb;
+                    if na < 1.0 || nb < 1.0 {
+                        *v = 0.0;
+                        continue;
+                    }
+                    let s1 = *v;
+                    let between = s1 * s1 * n / (na * nb);
+                    let within = (n - 1.0) - between;
+                    let denominator = (big_n - 2.0) * within + (n - 2.0) * between;
+                    *v = if within > 1e-2 * (n - 1.0) {
+                        ((big_n - 1.0) * (n - 2.0) * between / denominator).sqrt()
+                            * spread
+                            * s1.signum()
+                    } else {
+                        f32::NAN
+                    };
+                }
+            }
+        }
+        orient_all(self.spec.side, sums);
+    }
+
+    /// Error bound of a masked row's f32 statistic near `kernel_obs`, and the
+    /// slack its f32 values get against the running maxima' floors. The
+    /// maps from masked sums to the complete-data scale stretch a sum's
+    /// error by up to about sqrt(N) N / n (n observed of N units), more
+    /// near the conditioning limit; the factor 10 covers that, and the
+    /// relative term the f32 finisher itself.
+    pub(super) fn masked_band(&self, kernel_obs: f64, abs_sum: f64, observed: usize) -> (f64, f32) {
+        let big_n = self.units() as f64;
+        let n = observed.max(1) as f64;
+        let delta = 2.0 * (big_n + 2.0) * F32_UNIT * abs_sum + 1e-12;
+        let stretch = 10.0 * (big_n.sqrt() * big_n / n + 1.0);
+        let band = 2e-4 * (1.0 + kernel_obs.abs()) + stretch * delta;
+        // Student and rank-sum statistics stay below N in size; Welch's
+        // relative term is already in the maxima' floors.
+        let slack = stretch * delta + 2e-4 * (1.0 + big_n);
+        (band, slack as f32)
+    }
+}

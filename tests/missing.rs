@@ -1,0 +1,453 @@
+//! Features with missing values are tested on their observed samples:
+//! statistics from the textbook formulas on the observed values, exact
+//! permutation p-values against brute force over every split of all
+//! samples (the missing ones drop out of whichever group they land in),
+//! maxT across complete and masked features, `--min-observed`, and
+//! complete features unchanged by masked ones beside them.
+
+mod common;
+
+use common::{options, scan_rows, Table, TestRng};
+use riffle::design::Relabelings;
+use riffle::stats::{Side, TestKind};
+
+/// Observed values of group B (`true`) or A under a split.
+fn observed(x: &[f64], in_b: &[bool], b: bool) -> Vec<f64> {
+    x.iter()
+        .zip(in_b)
+        .filter(|(v, &g)| g == b && !v.is_nan())
+        .map(|(v, _)| *v)
+        .collect()
+}
+
+fn mean(v: &[f64]) -> f64 {
+    v.iter().sum::<f64>() / v.len() as f64
+}
+
+fn var(v: &[f64]) -> f64 {
+    let m = mean(v);
+    v.iter().map(|x| (x - m) * (x - m)).sum::<f64>() / (v.len() as f64 - 1.0)
+}
+
+/// Signed statistic of a split on the observed values, from the textbook
+/// definitions; a split that leaves a group too few values for the
+/// statistic scores 0 (riffle's documented rule). Mean difference is
+/// permuted through the pooled-variance t, as riffle documents.
+fn textbook(test: TestKind, x: &[f64], in_b: &[bool]) -> f64 {
+    let (a, b) = (observed(x, in_b, false), observed(x, in_b, true));
+    let (na, nb) = (a.len() as f64, b.len() as f64);
+    match test {
+        TestKind::Welch => {
+            if a.len() < 2 || b.len() < 2 {
+                return 0.0;
+            }
+            let t = (mean(&b) - mean(&a)) / (var(&a) / na + var(&b) / nb).sqrt();
+            if t.is_nan() {
+                0.0
+            } else {
+                t
+            }
+        }
+        TestKind::Student | TestKind::MeanDiff => {
+            if a.is_empty() || b.is_empty() {
+                return 0.0;
+            }
+            let ss = |v: &[f64]| {
+                let m = mean(v);
+                v.iter().map(|x| (x - m) * (x - m)).sum::<f64>()
+            };
+            let pooled = (ss(&a) + ss(&b)) / (na + nb - 2.0);
+            (mean(&b) - mean(&a)) / (pooled * (1.0 / na + 1.0 / nb)).sqrt()
+        }
+        TestKind::RankSum => {
+            // Tie-corrected z-score of the Mann–Whitney U of B, without
+            // continuity correction (Hollander & Wolfe, "Nonparametric
+            // Statistical Methods", the large-sample form with ties).
+            if a.is_empty() || b.is_empty() {
+                return 0.0;
+            }
+            let all: Vec<f64> = a.iter().chain(&b).copied().collect();
+            let n = all.len() as f64;
+            let rank = |v: f64| {
+                let below = all.iter().filter(|&&y| y < v).count() as f64;
+                let equal = all.iter().filter(|&&y| y == v).count() as f64;
+                below + (equal + 1.0) / 2.0
+            };
+            let u = b.iter().map(|&v| rank(v)).sum::<f64>() - nb * (nb + 1.0) / 2.0;
+            let mut ties = 0.0;
+            let mut seen: Vec<f64> = Vec::new();
+            for &v in &all {
+                if !seen.contains(&v) {
+                    seen.push(v);
+                    let t = all.iter().filter(|&&y| y == v).count() as f64;
+                    ties += t * t * t - t;
+                }
+            }
+            let sd = (na * nb / 12.0 * ((n + 1.0) - ties / (n * (n - 1.0)))).sqrt();
+            (u - na * nb / 2.0) / sd
+        }
+        other => unreachable!("{other:?}"),
+    }
+}
+
+fn orient(side: Side, t: f64) -> f64 {
+    match side {
+        Side::Both => t.abs(),
+        Side::Greater => t,
+        Side::Less => -t,
+    }
+}
+
+/// Exact p by listing every split of all samples into the design's group
+/// sizes (common practice, no single source).
+fn brute_force_p(test: TestKind, side: Side, x: &[f64], labels: &[u8]) -> f64 {
+    let n = x.len();
+    let k = labels.iter().filter(|&&l| l == 1).count();
+    let in_b: Vec<bool> = labels.iter().map(|&l| l == 1).collect();
+    let t_obs = orient(side, textbook(test, x, &in_b));
+    let (mut extreme, mut total) = (0u64, 0u64);
+    for mask in 0u32..(1 << n) {
+        if mask.count_ones() as usize != k {
+            continue;
+        }
+        let split: Vec<bool> = (0..n).map(|i| mask >> i & 1 == 1).collect();
+        total += 1;
+        if orient(side, textbook(test, x, &split)) >= t_obs - 1e-9 * (1.0 + t_obs.abs()) {
+            extreme += 1;
+        }
+    }
+    extreme as f64 / total as f64
+}
+
+/// Rows of 10 samples (5 vs 5) with one to three values missing, ties,
+/// and two complete rows.
+fn small_rows(labels: &[u8]) -> Vec<Vec<f64>> {
+    let mut rng = TestRng::new(23);
+    let mut rows: Vec<Vec<f64>> = (0..8)
+        .map(|f| {
+            let mut row: Vec<f64> = labels
+                .iter()
+                .map(|&l| rng.normal() + 0.5 * f as f64 * f64::from(l))
+                .collect();
+            for j in 0..=(f % 3) {
+                row[(3 * f + 4 * j) % labels.len()] = f64::NAN;
+            }
+            row
+        })
+        .collect();
+    rows.push(vec![1.0, 2.0, f64::NAN, 1.0, 3.0, 1.0, 2.0, 2.0, 3.0, 2.0]);
+    rows.push(vec![0.0, 1.0, 1.0, f64::NAN, 1.0, 0.0, f64::NAN, 1.0, 1.0, 0.0]);
+    rows.push((0..10).map(|i| (i * 7 % 10) as f64).collect());
+    rows.push((0..10).map(|_| rng.normal()).collect());
+    rows
+}
+
+#[test]
+fn exact_p_with_missing_values_equals_brute_force() {
+    let labels = [0u8, 1, 1, 0, 1, 0, 1, 0, 1, 0];
+    let rows = small_rows(&labels);
+    let dir = tempfile::tempdir().unwrap();
+    for test in [
+        TestKind::Welch,
+        TestKind::Student,
+        TestKind::MeanDiff,
+        TestKind::RankSum,
+    ] {
+        for side in [Side::Both, Side::Greater, Side::Less] {
+            let mut o = options(dir.path());
+            o.test = test;
+            o.side = side;
+            o.perms = 1000;
+            o.min_observed = 2;
+            let summary = scan_rows(&rows, &labels, &o);
+            assert!(summary.exact);
+            assert_eq!(summary.tested as usize, rows.len(), "{test:?}");
+            let table = Table::read(&summary.results_path);
+            let p = table.f64s("p_perm");
+            for (f, row) in rows.iter().enumerate() {
+                let expected = brute_force_p(test, side, row, &labels);
+                assert!(
+                    (p[f] - expected).abs() < 1e-12,
+                    "{test:?} {side:?} feature {f}: riffle {} brute force {expected}",
+                    p[f]
+                );
+            }
+        }
+    }
+}
+
+#[test]
+fn statistics_and_counts_are_those_of_the_observed_values() {
+    let labels = [0u8, 1, 1, 0, 1, 0, 1, 0, 1, 0];
+    let rows = small_rows(&labels);
+    let in_b: Vec<bool> = labels.iter().map(|&l| l == 1).collect();
+    let dir = tempfile::tempdir().unwrap();
+    for test in [TestKind::Welch, TestKind::Student, TestKind::MeanDiff] {
+        let mut o = options(dir.path());
+        o.test = test;
+        o.perms = 200;
+        o.min_observed = 2;
+        let summary = scan_rows(&rows, &labels, &o);
+        let table = Table::read(&summary.results_path);
+        let (stat, effect) = (table.f64s("statistic"), table.f64s("effect"));
+        let (n_a, n_b) = (table.f64s("n_a"), table.f64s("n_b"));
+        for (f, row) in rows.iter().enumerate() {
+            let (a, b) = (observed(row, &in_b, false), observed(row, &in_b, true));
+            assert_eq!((n_a[f], n_b[f]), (a.len() as f64, b.len() as f64), "{f}");
+            let diff = mean(&b) - mean(&a);
+            assert!((effect[f] - diff).abs() < 1e-12, "{test:?} {f}");
+            let expected = if test == TestKind::MeanDiff {
+                diff
+            } else {
+                textbook(test, row, &in_b)
+            };
+            assert!(
+                (stat[f] - expected).abs() < 1e-9 * (1.0 + expected.abs()),
+                "{test:?} feature {f}: {} vs {expected}",
+                stat[f]
+            );
+        }
+    }
+}
+
+/// Single-step and step-down maxT (Westfall & Young 1993) over complete
+/// and masked features together, against all statistics held in memory.
+/// Welch: the kernel statistic is the Welch t of the observed values.
+/// Student: a masked feature's t is put on the complete-data scale as the
+/// group-B sum of standardized values a complete feature would need for
+/// the same t: S1 = sqrt((N-1) t^2 / (N-2+t^2) * N_a N_b / N) (riffle's
+/// documented choice; for a complete feature that is its own S1).
+#[test]
+fn maxt_compares_masked_and_complete_features_on_one_scale() {
+    let labels: Vec<u8> = (0..24).map(|i| u8::from(i % 2 == 0)).collect();
+    let n = labels.len() as f64;
+    let mut rng = TestRng::new(41);
+    let rows: Vec<Vec<f64>> = (0..120)
+        .map(|f| {
+            let shift = if f % 17 == 3 { 1.4 } else { 0.0 };
+            labels
+                .iter()
+                .map(|&l| {
+                    if f % 3 != 0 && rng.uniform() < 0.25 {
+                        f64::NAN
+                    } else {
+                        rng.normal() + shift * f64::from(l)
+                    }
+                })
+                .collect()
+        })
+        .collect();
+    let (perms, seed) = (400, 12);
+    let dir = tempfile::tempdir().unwrap();
+    for test in [TestKind::Welch, TestKind::Student] {
+        let mut o = options(dir.path());
+        o.test = test;
+        o.perms = perms;
+        o.seed = seed;
+        o.min_observed = 2;
+        o.chunk_rows = Some(37);
+        let summary = scan_rows(&rows, &labels, &o);
+        assert_eq!(summary.tested as usize, rows.len());
+        let table = Table::read(&summary.results_path);
+        let (p_maxt, p_single) = (table.f64s("p_maxt"), table.f64s("p_maxt_single"));
+        let p_perm = table.f64s("p_perm");
+        let scale = |t: f64| -> f64 {
+            match test {
+                TestKind::Welch => t.abs(),
+                _ => {
+                    let u = if t.is_infinite() {
+                        n - 1.0
+                    } else {
+                        (n - 1.0) * t * t / (n - 2.0 + t * t)
+                    };
+                    (u * 12.0 * 12.0 / n).sqrt()
+                }
+            }
+        };
+        let relabel = Relabelings::draw(&labels, perms, seed);
+        let big_b = relabel.count;
+        let split = |l: &[u8]| -> Vec<bool> { l.iter().map(|&v| v == 1).collect() };
+        let obs: Vec<f64> = rows
+            .iter()
+            .map(|x| scale(textbook(test, x, &split(&labels))))
+            .collect();
+        let null: Vec<Vec<f64>> = rows
+            .iter()
+            .map(|x| {
+                (0..big_b)
+                    .map(|b| scale(textbook(test, x, &split(relabel.row(b)))))
+                    .collect()
+            })
+            .collect();
+        let tol = 1e-9;
+        let denominator = (big_b + 1) as f64;
+        let m = rows.len();
+        let column_max: Vec<f64> = (0..big_b)
+            .map(|b| null.iter().map(|t| t[b]).fold(f64::NEG_INFINITY, f64::max))
+            .collect();
+        let mut p_tilde = vec![0.0; m];
+        for j in 0..m {
+            let exceed = null[j].iter().filter(|&&t| t >= obs[j] * (1.0 - tol)).count();
+            let expected = (exceed + 1) as f64 / denominator;
+            assert!((p_perm[j] - expected).abs() < 1e-15, "{test:?} p_perm {j}");
+            let single = column_max
+                .iter()
+                .filter(|&&c| c >= obs[j] * (1.0 - tol))
+                .count();
+            let expected = (single + 1) as f64 / denominator;
+            assert!(
+                (p_single[j] - expected).abs() < 1e-15,
+                "{test:?} single-step {j}: riffle {} brute force {expected}",
+                p_single[j]
+            );
+            let reached = (0..big_b)
+                .filter(|&b| {
+                    (0..m)
+                        .filter(|&k| obs[k] <= obs[j] * (1.0 + tol))
+                        .any(|k| null[k][b] >= obs[j] * (1.0 - tol))
+                })
+                .count();
+            p_tilde[j] = (reached + 1) as f64 / denominator;
+        }
+        for j in 0..m {
+            let expected = (0..m)
+                .filter(|&k| obs[k] >= obs[j] * (1.0 - tol))
+                .map(|k| p_tilde[k])
+                .fold(0.0, f64::max);
+            assert!(
+                (p_maxt[j] - expected).abs() < 1e-15,
+                "{test:?} step-down {j}: riffle {} brute force {expected}",
+                p_maxt[j]
+            );
+        }
+    }
+}
+
+#[test]
+fn too_few_observed_values_are_untested_with_the_reason() {
+    let labels: Vec<u8> = (0..12).map(|i| u8::from(i >= 6)).collect();
+    let mut rng = TestRng::new(3);
+    let mut row = |missing_b: usize| -> Vec<f64> {
+        (0..12)
+            .map(|i| {
+                if i >= 6 && i < 6 + missing_b {
+                    f64::NAN
+                } else {
+                    rng.normal()
+                }
+            })
+            .collect()
+    };
+    // Group B keeps 3, 2, 0 observed values.
+    let rows = vec![row(3), row(4), row(6), vec![f64::NAN; 12]];
+    let dir = tempfile::tempdir().unwrap();
+    let mut o = options(dir.path());
+    o.perms = 99;
+    let summary = scan_rows(&rows, &labels, &o);
+    let table = Table::read(&summary.results_path);
+    let note = table.text("note");
+    assert_eq!(note[0], "");
+    for f in 1..4 {
+        assert_eq!(note[f], "too few observed values", "feature {f}");
+        assert_eq!(table.text("p_source")[f], "untested");
+    }
+    assert_eq!(table.f64s("n_b")[1], 2.0);
+    o.min_observed = 2;
+    let summary = scan_rows(&rows, &labels, &o);
+    let table = Table::read(&summary.results_path);
+    assert_eq!(table.text("note")[1], "");
+    assert_eq!(table.text("note")[2], "too few observed values");
+}
+
+/// A complete feature's results do not depend on masked features beside
+/// it (the masked path is separate); the same per-feature columns whether
+/// or not masked rows are interleaved, in tiles mixing both.
+#[test]
+fn complete_features_are_unchanged_by_masked_neighbours() {
+    let labels: Vec<u8> = (0..20).map(|i| u8::from(i % 4 < 2)).collect();
+    let mut rng = TestRng::new(17);
+    let complete: Vec<Vec<f64>> = (0..150)
+        .map(|f| {
+            labels
+                .iter()
+                .map(|&l| rng.normal() + 0.02 * f as f64 * f64::from(l))
+                .collect()
+        })
+        .collect();
+    let mut mixed = Vec::new();
+    let mut where_complete = Vec::new();
+    for (f, row) in complete.iter().enumerate() {
+        where_complete.push(mixed.len());
+        mixed.push(row.clone());
+        if f % 2 == 0 {
+            let mut masked: Vec<f64> = (0..20).map(|_| rng.normal()).collect();
+            masked[f % 20] = f64::NAN;
+            mixed.push(masked);
+        }
+    }
+    for test in [TestKind::Welch, TestKind::Student, TestKind::RankSum] {
+        let dir_a = tempfile::tempdir().unwrap();
+        let dir_b = tempfile::tempdir().unwrap();
+        let mut o = options(dir_a.path());
+        o.test = test;
+        o.perms = 300;
+        o.maxt = riffle::scan::MaxtMode::Single;
+        let alone = Table::read(&scan_rows(&complete, &labels, &o).results_path);
+        o.out = dir_b.path().to_path_buf();
+        let beside = Table::read(&scan_rows(&mixed, &labels, &o).results_path);
+        for column in [
+            "effect",
+            "statistic",
+            "p_param",
+            "p_perm",
+            "n_exceed",
+            "n_a",
+            "n_b",
+        ] {
+            for (f, &g) in where_complete.iter().enumerate() {
+                assert_eq!(
+                    alone.text(column)[f],
+                    beside.text(column)[g],
+                    "{test:?} {column} feature {f}"
+                );
+            }
+        }
+    }
+}
+
+#[test]
+fn masked_results_do_not_depend_on_threads_or_chunk_size() {
+    let labels: Vec<u8> = (0..16).map(|i| u8::from(i % 3 == 0)).collect();
+    let mut rng = TestRng::new(8);
+    let rows: Vec<Vec<f64>> = (0..1500)
+        .map(|f| {
+            labels
+                .iter()
+                .map(|&l| {
+                    if rng.uniform() < 0.1 {
+                        f64::NAN
+                    } else {
+                        rng.normal() * (1.0 + f as f64 % 7.0) + f64::from(l) * 0.5
+                    }
+                })
+                .collect()
+        })
+        .collect();
+    for test in [TestKind::Welch, TestKind::Student, TestKind::RankSum] {
+        let mut outputs = Vec::new();
+        for (threads, chunk) in [(1, 5000), (2, 37), (2, 1000)] {
+            let dir = tempfile::tempdir().unwrap();
+            let mut o = options(dir.path());
+            o.test = test;
+            o.perms = 500;
+            o.threads = threads;
+            o.chunk_rows = Some(chunk);
+            o.pooled_null = true;
+            let summary = scan_rows(&rows, &labels, &o);
+            assert!(summary.tested > 1000, "{test:?}: {}", summary.tested);
+            outputs.push(std::fs::read(&summary.results_path).unwrap());
+        }
+        assert_eq!(outputs[0], outputs[1], "{test:?}: 1 vs 2 threads");
+        assert_eq!(outputs[1], outputs[2], "{test:?}: chunk sizes");
+    }
+}
