@@ -136,7 +136,18 @@ fn small_rows(labels: &[u8]) -> Vec<Vec<f64>> {
         })
         .collect();
     rows.push(vec![1.0, 2.0, f64::NAN, 1.0, 3.0, 1.0, 2.0, 2.0, 3.0, 2.0]);
-    rows.push(vec![0.0, 1.0, 1.0, f64::NAN, 1.0, 0.0, f64::NAN, 1.0, 1.0, 0.0]);
+    rows.push(vec![
+        0.0,
+        1.0,
+        1.0,
+        f64::NAN,
+        1.0,
+        0.0,
+        f64::NAN,
+        1.0,
+        1.0,
+        0.0,
+    ]);
     rows.push((0..10).map(|i| (i * 7 % 10) as f64).collect());
     rows.push((0..10).map(|_| rng.normal()).collect());
     rows
@@ -287,7 +298,10 @@ fn maxt_compares_masked_and_complete_features_on_one_scale() {
             .collect();
         let mut p_tilde = vec![0.0; m];
         for j in 0..m {
-            let exceed = null[j].iter().filter(|&&t| t >= obs[j] * (1.0 - tol)).count();
+            let exceed = null[j]
+                .iter()
+                .filter(|&&t| t >= obs[j] * (1.0 - tol))
+                .count();
             let expected = (exceed + 1) as f64 / denominator;
             assert!((p_perm[j] - expected).abs() < 1e-15, "{test:?} p_perm {j}");
             let single = column_max
@@ -450,4 +464,83 @@ fn masked_results_do_not_depend_on_threads_or_chunk_size() {
         assert_eq!(outputs[0], outputs[1], "{test:?}: 1 vs 2 threads");
         assert_eq!(outputs[1], outputs[2], "{test:?}: chunk sizes");
     }
+}
+
+/// `riffle simulate --missing-fraction`: about that share of values is
+/// missing, and the observed values are those of the complete matrix of the
+/// same seed (a complete feature of both gives the same statistic).
+#[test]
+fn simulated_missing_values_leave_the_other_values_unchanged() {
+    let dir = tempfile::tempdir().unwrap();
+    let path = |name: &str| dir.path().join(name).to_str().unwrap().to_string();
+    let mut tables = Vec::new();
+    for (name, fraction) in [("complete", "0"), ("gaps", "0.1")] {
+        let matrix = path(&format!("{name}.arrow"));
+        let sheet = path("sheet.tsv");
+        let out = common::riffle(&[
+            "simulate",
+            "--out",
+            &matrix,
+            "--sheet",
+            &sheet,
+            "--features",
+            "2000",
+            "--group-sizes",
+            "12,12",
+            "--missing-fraction",
+            fraction,
+            "--seed",
+            "4",
+        ]);
+        assert!(
+            out.status.success(),
+            "{}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+        let results = path(&format!("out-{name}"));
+        let out = common::riffle(&[
+            "scan",
+            "--matrix",
+            &matrix,
+            "--samples",
+            &sheet,
+            "--group",
+            "group",
+            "--perms",
+            "99",
+            "--format",
+            "tsv",
+            "--no-report",
+            "--quiet",
+            "--out",
+            &results,
+        ]);
+        assert!(
+            out.status.success(),
+            "{}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+        tables.push(Table::read(
+            &dir.path().join(format!("out-{name}/results.tsv")),
+        ));
+    }
+    let (complete, gaps) = (&tables[0], &tables[1]);
+    let (n_a, n_b) = (gaps.f64s("n_a"), gaps.f64s("n_b"));
+    let observed: f64 = n_a.iter().zip(&n_b).map(|(a, b)| a + b).sum();
+    let share = 1.0 - observed / (2000.0 * 24.0);
+    // Binomial SD of the share over 48,000 values is 0.0014.
+    assert!((share - 0.1).abs() < 0.01, "missing share {share}");
+    let mut whole = 0;
+    for f in 0..2000 {
+        if n_a[f] + n_b[f] == 24.0 {
+            whole += 1;
+            assert_eq!(
+                complete.text("statistic")[f],
+                gaps.text("statistic")[f],
+                "{f}"
+            );
+        }
+    }
+    // 0.9^24 = 8% of features keep all their values.
+    assert!(whole > 80, "{whole} complete features");
 }

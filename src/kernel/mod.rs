@@ -280,7 +280,9 @@ impl Kernel {
         // Missing values (NaN, masked rows) enter the sums as 0.
         let f32_or_zero = |v: f64| if v.is_nan() { 0.0 } else { v as f32 };
         buffers.z32.clear();
-        buffers.z32.extend(standardized.iter().map(|&v| f32_or_zero(v)));
+        buffers
+            .z32
+            .extend(standardized.iter().map(|&v| f32_or_zero(v)));
         buffers.sq32.clear();
         if squares {
             buffers
