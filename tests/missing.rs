@@ -609,3 +609,164 @@ fn masked_counts_equal_an_all_f64_count() {
         }
     }
 }
+
+/// One-way F and tie-corrected Kruskal–Wallis H on the observed values of
+/// each class, from their textbook definitions (Kruskal & Wallis 1952,
+/// JASA 47, with the tie correction 1 - sum(t^3 - t)/(n^3 - n)); 0 when a
+/// class has no observed value (riffle's documented rule).
+fn k_group_statistic(test: TestKind, x: &[f64], classes: &[usize], k: usize) -> f64 {
+    let kept: Vec<(f64, usize)> = x
+        .iter()
+        .zip(classes)
+        .filter(|(v, _)| !v.is_nan())
+        .map(|(&v, &c)| (v, c))
+        .collect();
+    let n = kept.len() as f64;
+    let values: Vec<f64> = if test == TestKind::Kruskal {
+        kept.iter()
+            .map(|(v, _)| {
+                kept.iter().filter(|(y, _)| y < v).count() as f64
+                    + (kept.iter().filter(|(y, _)| y == v).count() as f64 + 1.0) / 2.0
+            })
+            .collect()
+    } else {
+        kept.iter().map(|(v, _)| *v).collect()
+    };
+    let group = |g: usize| -> Vec<f64> {
+        values
+            .iter()
+            .zip(&kept)
+            .filter(|(_, (_, c))| *c == g)
+            .map(|(v, _)| *v)
+            .collect()
+    };
+    if (0..k).any(|g| group(g).is_empty()) {
+        return 0.0;
+    }
+    if test == TestKind::Kruskal {
+        let mut h = -3.0 * (n + 1.0);
+        for g in 0..k {
+            let r = group(g);
+            h += 12.0 / (n * (n + 1.0)) * r.iter().sum::<f64>().powi(2) / r.len() as f64;
+        }
+        let mut ties = 0.0;
+        let mut seen: Vec<f64> = Vec::new();
+        for &(v, _) in &kept {
+            if !seen.contains(&v) {
+                seen.push(v);
+                let t = kept.iter().filter(|(y, _)| *y == v).count() as f64;
+                ties += t * t * t - t;
+            }
+        }
+        return h / (1.0 - ties / (n * n * n - n));
+    }
+    let grand = mean(&values);
+    let (mut ssb, mut ssw) = (0.0, 0.0);
+    for g in 0..k {
+        let v = group(g);
+        let m = mean(&v);
+        ssb += v.len() as f64 * (m - grand) * (m - grand);
+        ssw += v.iter().map(|a| (a - m) * (a - m)).sum::<f64>();
+    }
+    (ssb / (k as f64 - 1.0)) / (ssw / (n - k as f64))
+}
+
+/// Every distinct arrangement of class labels (common practice, no single
+/// source): recursive placement of a multiset.
+fn arrangements(items: &[usize]) -> Vec<Vec<usize>> {
+    fn place(rest: &mut Vec<usize>, current: &mut Vec<usize>, out: &mut Vec<Vec<usize>>) {
+        if rest.is_empty() {
+            out.push(current.clone());
+            return;
+        }
+        let mut seen = Vec::new();
+        for i in 0..rest.len() {
+            if seen.contains(&rest[i]) {
+                continue;
+            }
+            seen.push(rest[i]);
+            let v = rest.remove(i);
+            current.push(v);
+            place(rest, current, out);
+            current.pop();
+            rest.insert(i, v);
+        }
+    }
+    let mut sorted = items.to_vec();
+    sorted.sort();
+    let mut out = Vec::new();
+    place(&mut sorted, &mut Vec::new(), &mut out);
+    out
+}
+
+#[test]
+fn k_groups_with_missing_values_equal_brute_force() {
+    let classes = [0usize, 1, 2, 0, 1, 2, 0, 1, 2];
+    let mut rng = TestRng::new(6);
+    let mut rows: Vec<Vec<f64>> = (0..6)
+        .map(|f| {
+            let mut row: Vec<f64> = classes
+                .iter()
+                .map(|&c| rng.normal() + 0.6 * f as f64 * c as f64)
+                .collect();
+            row[f % 9] = f64::NAN;
+            if f % 2 == 1 {
+                row[(f + 4) % 9] = f64::NAN;
+            }
+            row
+        })
+        .collect();
+    rows.push(vec![1.0, 2.0, 2.0, 1.0, f64::NAN, 3.0, 2.0, 3.0, 3.0]);
+    let mut sheet = String::from("sample\tgroup\n");
+    for (i, c) in classes.iter().enumerate() {
+        sheet.push_str(&format!("s{i}\tg{c}\n"));
+    }
+    let columns = riffle::design::DesignColumns {
+        group: Some("group".into()),
+        ..Default::default()
+    };
+    let all = arrangements(&classes);
+    let dir = tempfile::tempdir().unwrap();
+    for test in [TestKind::Anova, TestKind::Kruskal] {
+        let mut o = options(dir.path());
+        o.test = test;
+        o.perms = 5000;
+        o.min_observed = 2;
+        let summary = common::scan_with_sheet(
+            &rows,
+            &sheet,
+            riffle::stats::DesignKind::Groups,
+            &columns,
+            &o,
+        );
+        assert!(summary.exact);
+        assert_eq!(summary.tested as usize, rows.len(), "{test:?}");
+        let table = Table::read(&summary.results_path);
+        let (p, stat, n_a) = (
+            table.f64s("p_perm"),
+            table.f64s("statistic"),
+            table.f64s("n_a"),
+        );
+        for (f, row) in rows.iter().enumerate() {
+            let observed = k_group_statistic(test, row, &classes, 3);
+            assert!(
+                (stat[f] - observed).abs() < 1e-9 * (1.0 + observed),
+                "{test:?} feature {f}: statistic {} vs {observed}",
+                stat[f]
+            );
+            assert_eq!(n_a[f], row.iter().filter(|v| !v.is_nan()).count() as f64);
+            let reached = all
+                .iter()
+                .filter(|a| {
+                    k_group_statistic(test, row, a, 3) >= observed - 1e-9 * (1.0 + observed)
+                })
+                .count();
+            let expected = reached as f64 / all.len() as f64;
+            assert!(
+                (p[f] - expected).abs() < 1e-12,
+                "{test:?} feature {f}: p_perm {} vs brute force {expected}",
+                p[f]
+            );
+        }
+    }
+}

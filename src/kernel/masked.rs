@@ -24,6 +24,7 @@ impl Kernel {
         let (big_na, big_nb) = (self.spec.sizes.n_a as f32, self.spec.sizes.n_b as f32);
         let spread = (big_na * big_nb / big_n).sqrt();
         match self.spec.test {
+            TestKind::Anova | TestKind::Kruskal => self.masked_between_tile(sums, masks, n),
             TestKind::Welch => {
                 for ((v, &q1), &nb) in sums.iter_mut().zip(squares).zip(masks) {
                     let na = n - nb;
@@ -76,6 +77,40 @@ impl Kernel {
         orient_all(self.spec.side, sums);
     }
 
+    /// k groups: compacts groups of `width` class sums and observed class
+    /// counts into the kernel statistic (see `TestSpec::masked_between`),
+    /// in place.
+    fn masked_between_tile(&self, wide: &mut [f32], masks: &[f32], n: f32) {
+        let r = self.spec.width();
+        let cols = wide.len() / r;
+        let k = r as f32 + 1.0;
+        let big_n = self.units() as f32;
+        let anova = self.spec.test == TestKind::Anova;
+        for j in 0..cols {
+            let (mut rest, mut rest_count, mut between) = (0.0f32, n, 0.0f32);
+            let mut empty = false;
+            for c in 0..r {
+                let (s, m) = (wide[j * r + c], masks[j * r + c]);
+                empty |= m < 0.5;
+                rest += s;
+                rest_count -= m;
+                between += s * s / m;
+            }
+            empty |= rest_count < 0.5;
+            between += rest * rest / rest_count;
+            let within = (n - 1.0) - between;
+            wide[j] = if empty {
+                0.0
+            } else if !anova {
+                between
+            } else if within > 1e-2 * (n - 1.0) {
+                (big_n - 1.0) * (n - k) * between / ((big_n - k) * within + (n - k) * between)
+            } else {
+                f32::NAN
+            };
+        }
+    }
+
     /// Error bound of a masked row's f32 statistic near `kernel_obs`, and the
     /// slack its f32 values get against the running maxima' floors. The
     /// maps from masked sums to the complete-data scale stretch a sum's
@@ -86,7 +121,13 @@ impl Kernel {
         let big_n = self.units() as f64;
         let n = observed.max(1) as f64;
         let delta = 2.0 * (big_n + 2.0) * F32_UNIT * abs_sum + 1e-12;
-        let stretch = 10.0 * (big_n.sqrt() * big_n / n + 1.0);
+        let mut stretch = 10.0 * (big_n.sqrt() * big_n / n + 1.0);
+        if self.spec.test.is_k_group() {
+            // Sums of squares of k class sums, each class as small as one
+            // value: 2 |s| delta with |s| <= sqrt(n - 1), k times over.
+            let k = self.spec.group_sizes.len() as f64;
+            stretch *= 2.0 * k * k * big_n.sqrt();
+        }
         let band = 2e-4 * (1.0 + kernel_obs.abs()) + stretch * delta;
         // Student and rank-sum statistics stay below N in size; Welch's
         // relative term is already in the maxima' floors.

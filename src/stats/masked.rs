@@ -17,21 +17,25 @@
 //!   features);
 //! - rank-sum: the group-B sum of standardized mid-ranks that a complete
 //!   feature would need for the same standardized rank sum
-//!   S1 / sqrt(n_a n_b / n), its permutation z-score.
+//!   S1 / sqrt(n_a n_b / n), its permutation z-score;
+//! - one-way F: the between-group sum of squares a complete feature would
+//!   need for the same F (F's df follow the observed count);
+//! - Kruskal–Wallis: H itself, which for standardized mid-ranks is the
+//!   between-group sum of squares at any number of observed values.
 //!
 //! For complete rows each map is the identity. A relabelling that leaves
 //! a group without enough observed values for the statistic (none for
-//! Student and rank-sum, fewer than two for Welch) gets statistic 0: no
-//! evidence either way.
+//! Student, rank-sum and k-group tests, fewer than two for Welch) gets
+//! statistic 0: no evidence either way.
 
-use super::prepare::{Assignment, PrepScratch, Prepared, Status, TestSpec};
+use super::prepare::{Assignment, PrepScratch, Prepared, Status, TestSpec, MAX_GROUPS};
 use super::{welch_t, DesignKind, GroupSums, Sizes, TestKind};
 
 impl TestSpec {
     /// Whether features with missing values are tested on their observed
     /// samples (otherwise they are reported untested, `missing values`).
     pub fn supports_missing(&self) -> bool {
-        self.model.is_none() && self.test.design() == DesignKind::Groups && !self.test.is_k_group()
+        self.model.is_none() && self.test.design() == DesignKind::Groups
     }
 
     /// A row with NaN: the test on the observed values, with `z` the
@@ -43,6 +47,9 @@ impl TestSpec {
         z: &mut [f64],
         scratch: &mut PrepScratch,
     ) -> Prepared {
+        if self.test.is_k_group() {
+            return self.prepare_masked_k_groups(raw, labels, z, scratch);
+        }
         let mut values = std::mem::take(&mut scratch.observed_raw);
         let mut classes = std::mem::take(&mut scratch.observed_labels);
         let mut observed_z = std::mem::take(&mut scratch.observed_z);
@@ -108,6 +115,65 @@ impl TestSpec {
         prepared
     }
 
+    /// k groups: the test of the observed values, each class as observed.
+    fn prepare_masked_k_groups(
+        &self,
+        raw: &[f64],
+        labels: &[u8],
+        z: &mut [f64],
+        scratch: &mut PrepScratch,
+    ) -> Prepared {
+        let mut values = std::mem::take(&mut scratch.observed_raw);
+        let mut classes = std::mem::take(&mut scratch.observed_labels);
+        let mut observed_z = std::mem::take(&mut scratch.observed_z);
+        values.clear();
+        classes.clear();
+        let mut counts = vec![0usize; self.group_sizes.len()];
+        for (&v, &l) in raw.iter().zip(labels) {
+            if !v.is_nan() {
+                values.push(v);
+                classes.push(l);
+                counts[l as usize] += 1;
+            }
+        }
+        let observed = Some(Sizes {
+            n_a: values.len(),
+            n_b: 0,
+        });
+        let prepared = if counts.iter().any(|&c| c < self.min_observed.max(2)) {
+            Prepared::untested(Status::TooFewObserved, f64::NAN)
+        } else {
+            observed_z.resize(values.len(), 0.0);
+            let mut spec = self.clone();
+            spec.group_sizes = counts;
+            let p = spec.prepare_k_groups(&values, &classes, &mut observed_z, scratch);
+            if p.status == Status::Tested {
+                let mut k = 0;
+                for (zi, &v) in z.iter_mut().zip(raw) {
+                    if v.is_nan() {
+                        *zi = f64::NAN;
+                    } else {
+                        *zi = observed_z[k];
+                        k += 1;
+                    }
+                }
+                Prepared {
+                    kernel_obs: self.masked_kernel_stat(z, labels),
+                    ..p
+                }
+            } else {
+                p
+            }
+        };
+        scratch.observed_raw = values;
+        scratch.observed_labels = classes;
+        scratch.observed_z = observed_z;
+        Prepared {
+            observed,
+            ..prepared
+        }
+    }
+
     /// Kernel statistic of a standardized row with NaN where missing, under
     /// a relabelling (group tests), in f64.
     pub fn masked_kernel_stat_with(&self, z: &[f64], assignment: Assignment<'_>) -> f64 {
@@ -123,6 +189,18 @@ impl TestSpec {
     /// Kernel statistic of a standardized row with NaN where missing, for
     /// the class of each unit (1 = group B), in f64.
     pub fn masked_kernel_stat(&self, z: &[f64], classes: &[u8]) -> f64 {
+        if self.test.is_k_group() {
+            let mut sums = [0.0f64; MAX_GROUPS];
+            let mut counts = [0.0f64; MAX_GROUPS];
+            for (&v, &c) in z.iter().zip(classes) {
+                if !v.is_nan() {
+                    sums[c as usize] += v;
+                    counts[c as usize] += 1.0;
+                }
+            }
+            let k = self.group_sizes.len();
+            return self.masked_between(&sums[1..k], &counts[1..k], counts[..k].iter().sum());
+        }
         let (mut n_a, mut n_b) = (0usize, 0usize);
         let (mut s1, mut q1) = (0.0, 0.0);
         for (&v, &c) in z.iter().zip(classes) {
@@ -173,6 +251,36 @@ impl TestSpec {
                 self.student_equivalent(s1, between, within, n)
             }
         }
+    }
+
+    /// k groups: the kernel statistic from the class sums and observed
+    /// counts of classes 1..k (class 0 holds the rest; the sums of a
+    /// standardized row total 0) of a row with `n` observed values.
+    pub fn masked_between(&self, sums: &[f64], counts: &[f64], n: f64) -> f64 {
+        let (mut rest, mut rest_count, mut between) = (0.0, n, 0.0);
+        for (&s, &m) in sums.iter().zip(counts) {
+            if m == 0.0 {
+                return 0.0;
+            }
+            rest += s;
+            rest_count -= m;
+            between += s * s / m;
+        }
+        if rest_count == 0.0 {
+            return 0.0;
+        }
+        between += rest * rest / rest_count;
+        if self.test == TestKind::Kruskal {
+            return between;
+        }
+        let k = self.group_sizes.len() as f64;
+        let big_n: f64 = self.group_sizes.iter().sum::<usize>() as f64;
+        let within = ((n - 1.0) - between).max(0.0);
+        let denominator = (big_n - k) * within + (n - k) * between;
+        if denominator <= 0.0 {
+            return 0.0;
+        }
+        (big_n - 1.0) * (n - k) * between / denominator
     }
 
     /// sqrt(n_a n_b / n) of the complete design: the permutation SD of S1.

@@ -524,7 +524,7 @@ impl TestSpec {
 
     /// One-way F or Kruskal–Wallis H; effect = eta squared (share of the
     /// total sum of squares, of values or mid-ranks, between groups).
-    fn prepare_k_groups(
+    pub(super) fn prepare_k_groups(
         &self,
         raw: &[f64],
         labels: &[u8],

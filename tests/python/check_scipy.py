@@ -14,7 +14,8 @@ files, runs `riffle scan` for every test and side, and compares
   the observed values, and p_perm with scipy.stats.permutation_test over
   all 252 splits of the ten samples with a statistic that drops the
   missing values (riffle's relabelings move every sample; a missing one
-  drops out of whichever group it lands in).
+  drops out of whichever group it lands in); the same for one-way F and
+  Kruskal-Wallis (f_oneway, kruskal) on 3 + 3 + 3 samples.
 Exits 0 when everything agrees, 1 otherwise.
 """
 
@@ -314,6 +315,39 @@ def check_missing(folder):
             failures += not ok
             print(f"{'ok ' if ok else 'BAD'} missing {test:9} {side:7} max|p_param - scipy| = {worst_param:.2e}"
                   f"  max|p_perm - scipy| = {worst_perm:.2e}")
+
+    # k groups (3 + 3 + 3 samples, 1680 arrangements): f_oneway and kruskal
+    # on the observed values; a class left without values scores 0.
+    classes = np.array([0, 1, 2] * 3)
+    samples = [f"q{i}" for i in range(len(classes))]
+    rows = []
+    for k in range(6):
+        row = rng.normal(size=len(classes)) + 0.6 * k * classes
+        # One or two values missing, never two of one class.
+        row[[k % 9, (k + 4) % 9][: 1 + k % 2]] = np.nan
+        rows.append(row)
+    matrix = write_matrix(folder, "kmissing.arrow", rows, samples)
+    sheet = folder / "kmissing.tsv"
+    sheet.write_text("sample\tdose\n" + "".join(f"{s}\td{c}\n" for s, c in zip(samples, classes)))
+    for test, ref in [("anova", stats.f_oneway), ("kruskal", stats.kruskal)]:
+        res = scan(matrix, sheet, folder / f"out-missing-{test}",
+                   ["--test", test, "--group", "dose", "--perms", "5000", "--min-observed", "2"])
+        worst_param = worst_perm = 0.0
+        for r, row in zip(res, rows):
+            groups = [row[classes == g] for g in range(3)]
+
+            def statistic(*gs, ref=ref):
+                gs = [g[~np.isnan(g)] for g in gs]
+                return 0.0 if any(len(g) == 0 for g in gs) else ref(*gs).statistic
+            p_ref = ref(*[g[~np.isnan(g)] for g in groups]).pvalue
+            perm = stats.permutation_test(groups, statistic, permutation_type="independent",
+                                          n_resamples=np.inf, alternative="greater").pvalue
+            worst_param = max(worst_param, abs(float(r["p_param"]) - p_ref))
+            worst_perm = max(worst_perm, abs(float(r["p_perm"]) - perm))
+        ok = worst_param <= 1e-10 and worst_perm <= 1e-12
+        failures += not ok
+        print(f"{'ok ' if ok else 'BAD'} missing {test:9} both    max|p_param - scipy| = {worst_param:.2e}"
+              f"  max|p_perm - scipy| = {worst_perm:.2e}")
     return failures
 
 
