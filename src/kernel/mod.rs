@@ -365,16 +365,16 @@ impl Kernel {
                     let masks = &mut tiles.masks;
                     self.multiply(&rows.mask32[row0 * n..], rt, col0 * r, ct * r, masks);
                 }
-                for i in 0..rt {
+                for (i, &row_observed) in observed.iter().enumerate() {
                     let wide = &mut tiles.sums[i * ct * r..(i + 1) * ct * r];
-                    if masked && observed[i] < n {
+                    if masked && row_observed < n {
                         let squares = if squares {
                             &tiles.squares[i * ct..(i + 1) * ct]
                         } else {
                             &[]
                         };
                         let masks = &tiles.masks[i * ct * r..(i + 1) * ct * r];
-                        self.masked_tile(wide, squares, masks, observed[i]);
+                        self.masked_tile(wide, squares, masks, row_observed);
                     } else if squares {
                         self.welch_tile(wide, &tiles.squares[i * ct..(i + 1) * ct]);
                     } else if self.spec.model.is_some() {
