@@ -771,3 +771,38 @@ fn k_groups_with_missing_values_equal_brute_force() {
         }
     }
 }
+
+/// Designs without masking say so for a feature with missing values.
+#[test]
+fn unmasked_designs_name_the_reason() {
+    let trait_values = [3.1, 0.5, 2.2, 4.8, 1.0, 2.6, 1.7, 0.9];
+    let mut sheet = String::from("sample\tage\n");
+    for (i, t) in trait_values.iter().enumerate() {
+        sheet.push_str(&format!("s{i}\t{t}\n"));
+    }
+    let mut rng = TestRng::new(12);
+    let mut rows: Vec<Vec<f64>> = (0..3)
+        .map(|_| (0..8).map(|_| rng.normal()).collect())
+        .collect();
+    rows[1][4] = f64::NAN;
+    let columns = riffle::design::DesignColumns {
+        trait_column: Some("age".into()),
+        ..Default::default()
+    };
+    let dir = tempfile::tempdir().unwrap();
+    let mut o = options(dir.path());
+    o.test = TestKind::Pearson;
+    o.perms = 99;
+    let summary = common::scan_with_sheet(
+        &rows,
+        &sheet,
+        riffle::stats::DesignKind::Trait,
+        &columns,
+        &o,
+    );
+    let table = Table::read(&summary.results_path);
+    let note = table.text("note");
+    assert_eq!(note[0], "");
+    assert_eq!(note[1], "missing values (not masked in this design)");
+    assert!(table.f64s("p_perm")[1].is_nan());
+}

@@ -39,7 +39,7 @@ impl Status {
         match self {
             Status::Tested => "",
             Status::Constant => "constant",
-            Status::MissingValues => "missing values",
+            Status::MissingValues => "missing values (not masked in this design)",
             Status::NonFinite => "infinite values",
             Status::NoWithinVariance => "no variance within groups",
             Status::TooFewObserved => "too few observed values",
