@@ -145,6 +145,13 @@ pub struct ScanArgs {
     /// (p_source = tail in the results).
     #[arg(long, value_name = "EXCEED", num_args = 0..=1, default_missing_value = "10")]
     pub tail_fit: Option<u64>,
+    /// Features with missing values (NaN, NA, empty cells) are tested on
+    /// their observed samples when each group keeps at least this many
+    /// (two-group tests; at least 2). Three keeps two degrees of freedom in
+    /// each group's variance and more than one relabelling of the observed
+    /// values; fewer are reported untested ("too few observed values").
+    #[arg(long, default_value_t = crate::stats::prepare::DEFAULT_MIN_OBSERVED)]
+    pub min_observed: usize,
     /// No progress output.
     #[arg(long)]
     pub quiet: bool,
@@ -251,6 +258,7 @@ impl ScanArgs {
             storey_lambda: self.storey_lambda,
             maxt: self.maxt,
             pooled_null: self.pooled_null,
+            min_observed: self.min_observed,
             quiet: self.quiet,
             report: !self.no_report,
             shard: self.shard,

@@ -62,6 +62,10 @@ pub struct ScanOptions {
     pub maxt: MaxtMode,
     /// Pooled-null FDR (q_pooled): histogram of every relabelled statistic.
     pub pooled_null: bool,
+    /// Fewest observed values per group for a feature with missing values
+    /// to be tested (see `stats::masked`).
+    #[serde(default = "default_min_observed")]
+    pub min_observed: usize,
     pub quiet: bool,
     /// Write the run report (`<out>/report/`) after the results.
     #[serde(default)]
@@ -86,6 +90,10 @@ pub struct ScanOptions {
 
 fn default_checkpoint_seconds() -> f64 {
     60.0
+}
+
+fn default_min_observed() -> usize {
+    crate::stats::prepare::DEFAULT_MIN_OBSERVED
 }
 
 #[derive(
@@ -137,6 +145,7 @@ impl ScanOptions {
             storey_lambda: LambdaChoice::Fixed(0.5),
             maxt: MaxtMode::StepDown,
             pooled_null: false,
+            min_observed: default_min_observed(),
             quiet: true,
             report: false,
             shard: None,
@@ -741,6 +750,7 @@ pub(crate) fn test_spec(options: &ScanOptions, design: &StudyDesign) -> Result<T
                 group_sizes: design.group_sizes.clone(),
                 trait_weights: Vec::new(),
                 model: design.model.clone(),
+                min_observed: options.min_observed,
             }
         }
         DesignKind::Groups => {
@@ -766,6 +776,7 @@ pub(crate) fn test_spec(options: &ScanOptions, design: &StudyDesign) -> Result<T
                 },
             );
             spec.model = design.model.clone();
+            spec.min_observed = options.min_observed;
             spec
         }
         DesignKind::Trait => TestSpec {
@@ -775,6 +786,7 @@ pub(crate) fn test_spec(options: &ScanOptions, design: &StudyDesign) -> Result<T
             group_sizes: Vec::new(),
             trait_weights: design.trait_weights(test == TestKind::Spearman),
             model: design.model.clone(),
+            min_observed: options.min_observed,
         },
         DesignKind::Paired => TestSpec {
             test,
@@ -783,6 +795,7 @@ pub(crate) fn test_spec(options: &ScanOptions, design: &StudyDesign) -> Result<T
             group_sizes: Vec::new(),
             trait_weights: Vec::new(),
             model: None,
+            min_observed: options.min_observed,
         },
     })
 }
@@ -798,6 +811,12 @@ fn validate(options: &ScanOptions) -> Result<()> {
     }
     if options.chunk_rows == Some(0) {
         return Err(RiffleError::options("--chunk-rows must be at least 1"));
+    }
+    if options.min_observed < 2 {
+        return Err(RiffleError::options(format!(
+            "--min-observed {}: a group needs at least 2 observed values for a variance",
+            options.min_observed
+        )));
     }
     if !(options.checkpoint_seconds.is_finite() && options.checkpoint_seconds >= 0.0) {
         return Err(RiffleError::options(
@@ -928,8 +947,8 @@ impl ChunkSink for SpillSink {
                 p_maxt: f64::NAN,
                 exceed: f.exceed,
                 n_relabel: if tested { self.b_total as u64 } else { 0 },
-                n_a: self.sizes.n_a as u32,
-                n_b: self.sizes.n_b as u32,
+                n_a: p.observed.map_or(self.sizes.n_a, |o| o.n_a) as u32,
+                n_b: p.observed.map_or(self.sizes.n_b, |o| o.n_b) as u32,
                 status: p.status,
                 source: self.source,
             };

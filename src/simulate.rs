@@ -7,6 +7,11 @@
 //! every group-B value, |delta_f| = effect size, sign random. All draws come
 //! in order from one ChaCha20 stream keyed by the seed (normals by the
 //! Box–Muller transform), so the same arguments give the same bytes.
+//!
+//! With `--missing-fraction p` each value is then left out (NaN) with
+//! probability p, decided by a second stream (its own tag), so that the
+//! observed values are the same bytes as the complete matrix of the same
+//! seed: a benchmark can compare the two on the same data.
 
 use std::io::Write;
 use std::path::{Path, PathBuf};
@@ -43,6 +48,10 @@ pub struct SimulateArgs {
     /// Planted shift in units of the feature's own SD.
     #[arg(long, default_value_t = 1.5)]
     pub effect_size: f64,
+    /// Share of values left missing (NaN), each independently; the others
+    /// equal the complete matrix of the same seed.
+    #[arg(long, default_value_t = 0.0)]
+    pub missing_fraction: f64,
     #[arg(long, default_value_t = 1)]
     pub seed: u64,
     #[arg(long, value_enum, default_value_t = SimFormat::Arrow)]
@@ -66,6 +75,8 @@ pub enum SimFormat {
 
 /// Version tag of the simulation stream; part of the seed material.
 const SIM_GENERATOR: &str = "riffle-simulate-v1";
+/// Tag of the stream that picks missing values.
+const MISSING_GENERATOR: &str = "riffle-sim-missing-v1";
 
 struct Normals {
     rng: ChaCha20Rng,
@@ -74,9 +85,13 @@ struct Normals {
 
 impl Normals {
     fn new(seed: u64) -> Self {
+        Self::tagged(seed, SIM_GENERATOR)
+    }
+    /// `tag` (at most 24 bytes) keys an independent stream.
+    fn tagged(seed: u64, tag: &str) -> Self {
         let mut key = [0u8; 32];
         key[..8].copy_from_slice(&seed.to_le_bytes());
-        key[8..8 + SIM_GENERATOR.len()].copy_from_slice(SIM_GENERATOR.as_bytes());
+        key[8..8 + tag.len()].copy_from_slice(tag.as_bytes());
         Normals {
             rng: ChaCha20Rng::from_seed(key),
             spare: None,
@@ -100,6 +115,11 @@ impl Normals {
 pub fn run_simulate(args: &SimulateArgs) -> Result<()> {
     if !(0.0..=1.0).contains(&args.effect_fraction) {
         return Err(RiffleError::options("--effect-fraction must lie in [0, 1]"));
+    }
+    if !(0.0..1.0).contains(&args.missing_fraction) {
+        return Err(RiffleError::options(
+            "--missing-fraction must lie in [0, 1)",
+        ));
     }
     if args.group_sizes.len() != 2 || args.levels.len() != 2 {
         return Err(RiffleError::options(
@@ -144,6 +164,7 @@ pub fn run_simulate(args: &SimulateArgs) -> Result<()> {
     let n = na + nb;
     let digits = args.features.max(1).to_string().len();
     let mut rng = Normals::new(args.seed);
+    let mut missing = Normals::tagged(args.seed, MISSING_GENERATOR);
     let mut ids = Vec::with_capacity(batch);
     let mut values = Vec::with_capacity(batch * n);
     let mut written = 0u64;
@@ -165,7 +186,9 @@ pub fn run_simulate(args: &SimulateArgs) -> Result<()> {
             };
             for s in 0..n {
                 let v = mu + sigma * rng.normal() + if s >= na { shift } else { 0.0 };
-                values.push(v);
+                let left_out =
+                    args.missing_fraction > 0.0 && missing.uniform() < args.missing_fraction;
+                values.push(if left_out { f64::NAN } else { v });
             }
             if planted {
                 if let Some((p, w)) = truth.as_mut() {

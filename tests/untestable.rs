@@ -1,4 +1,4 @@
-//! Features that cannot be tested (constant, all missing, some missing,
+//! Features that cannot be tested (constant, all missing, too few observed,
 //! ±Inf, no variance within either group) stay in the table with a note and
 //! no p-values, do not stop the run, and are left out of m for every
 //! adjustment: q_bh of the tested features equals Benjamini–Hochberg
@@ -46,11 +46,12 @@ fn untestable_rows_are_kept_noted_and_left_out_of_m() {
         push(row, "", &mut rows);
         match k % 10 {
             1 => push(vec![3.25; 12], "constant", &mut rows),
-            2 => push(vec![f64::NAN; 12], "missing values", &mut rows),
+            2 => push(vec![f64::NAN; 12], "too few observed values", &mut rows),
             3 => {
+                // Group B (samples 6..12) keeps 2 observed values.
                 let mut r: Vec<f64> = (0..12).map(|i| i as f64).collect();
-                r[7] = f64::NAN;
-                push(r, "missing values", &mut rows)
+                r[7..11].fill(f64::NAN);
+                push(r, "too few observed values", &mut rows)
             }
             4 => {
                 let mut r: Vec<f64> = (0..12).map(|i| i as f64).collect();

@@ -15,6 +15,7 @@ use crate::stats::TestKind;
 
 mod finish;
 mod histogram;
+mod masked;
 
 use finish::orient_all;
 pub use histogram::{NullHistogram, UpperTail};
@@ -196,7 +197,7 @@ impl Kernel {
         };
         self.for_each_tile_row(&rows_view, 0, b_total, &mut s.tiles, |k, col0, tile| {
             let z = &standardized[k * n..(k + 1) * n];
-            let row = RowCheck::new(obs[k], rows_view.band[k]);
+            let row = RowCheck::new(obs[k], rows_view.band[k], rows_view.slack[k]);
             exceed[k] += self.count_row(
                 tile,
                 &row,
@@ -243,7 +244,7 @@ impl Kernel {
             &mut scratch.tiles,
             |k, col0, tile| {
                 let z = &standardized[k * n..(k + 1) * n];
-                let row = RowCheck::new(obs[k], rows_view.band[k]);
+                let row = RowCheck::new(obs[k], rows_view.band[k], rows_view.slack[k]);
                 let range = col0 - base..col0 - base + tile.len();
                 let mut hits = 0u64;
                 let recording = !state.records.is_empty();
@@ -286,28 +287,57 @@ impl Kernel {
         buffers: &'a mut RowBuffers,
     ) -> RowsView<'a> {
         let squares = self.spec.test.needs_squares();
+        // Missing values (NaN, masked rows) enter the sums as 0.
+        let f32_or_zero = |v: f64| if v.is_nan() { 0.0 } else { v as f32 };
         buffers.z32.clear();
-        buffers.z32.extend(standardized.iter().map(|&v| v as f32));
+        buffers
+            .z32
+            .extend(standardized.iter().map(|&v| f32_or_zero(v)));
         buffers.sq32.clear();
         if squares {
             buffers
                 .sq32
-                .extend(standardized.iter().map(|&v| (v * v) as f32));
+                .extend(standardized.iter().map(|&v| f32_or_zero(v * v)));
         }
         let n = self.units();
         buffers.band.clear();
+        buffers.slack.clear();
+        buffers.observed.clear();
         for (k, &o) in obs.iter().enumerate() {
-            let abs_sum: f64 = standardized[k * n..(k + 1) * n]
-                .iter()
-                .map(|v| v.abs())
-                .sum();
-            buffers.band.push(self.error_band(o, abs_sum));
+            let mut abs_sum = 0.0;
+            let mut missing = 0;
+            for &v in &standardized[k * n..(k + 1) * n] {
+                if v.is_nan() {
+                    missing += 1;
+                } else {
+                    abs_sum += v.abs();
+                }
+            }
+            let (band, slack) = if missing == 0 {
+                (self.error_band(o, abs_sum), 0.0)
+            } else {
+                self.masked_band(o, abs_sum, n - missing)
+            };
+            buffers.band.push(band);
+            buffers.slack.push(slack);
+            buffers.observed.push(n - missing);
+        }
+        buffers.mask32.clear();
+        if buffers.observed.iter().any(|&m| m < n) {
+            buffers.mask32.extend(
+                standardized
+                    .iter()
+                    .map(|v| if v.is_nan() { 0.0f32 } else { 1.0 }),
+            );
         }
         RowsView {
             rows: obs.len(),
             z32: &buffers.z32,
             sq32: &buffers.sq32,
+            mask32: &buffers.mask32,
             band: &buffers.band,
+            slack: &buffers.slack,
+            observed: &buffers.observed,
         }
     }
 
@@ -338,9 +368,24 @@ impl Kernel {
                 if squares {
                     self.multiply(&rows.sq32[row0 * n..], rt, col0, ct, &mut tiles.squares);
                 }
-                for i in 0..rt {
+                let observed = &rows.observed[row0..row0 + rt];
+                let masked = observed.iter().any(|&m| m < n);
+                if masked {
+                    tiles.masks.resize(ROW_TILE * COL_TILE * r, 0.0);
+                    let masks = &mut tiles.masks;
+                    self.multiply(&rows.mask32[row0 * n..], rt, col0 * r, ct * r, masks);
+                }
+                for (i, &row_observed) in observed.iter().enumerate() {
                     let wide = &mut tiles.sums[i * ct * r..(i + 1) * ct * r];
-                    if squares {
+                    if masked && row_observed < n {
+                        let squares = if squares {
+                            &tiles.squares[i * ct..(i + 1) * ct]
+                        } else {
+                            &[]
+                        };
+                        let masks = &tiles.masks[i * ct * r..(i + 1) * ct * r];
+                        self.masked_tile(wide, squares, masks, row_observed);
+                    } else if squares {
                         self.welch_tile(wide, &tiles.squares[i * ct..(i + 1) * ct]);
                     } else if self.spec.model.is_some() {
                         self.model_tile(wide, ct);
@@ -463,7 +508,7 @@ impl Kernel {
         for (&v, &floor) in tile.iter().zip(floors.iter()) {
             clear += u32::from(v > row.above);
             near |= !((v > row.above) | (v < row.below));
-            over |= v > floor;
+            over |= v + row.slack > floor;
         }
         let mut count = u64::from(clear);
         if !(near || over) {
@@ -473,8 +518,12 @@ impl Kernel {
             return count;
         }
         let exact_at = |j: usize| {
-            self.spec
-                .kernel_stat_with(z, assignment(&self.spec, &self.relabel, col0 + j))
+            let relabelling = assignment(&self.spec, &self.relabel, col0 + j);
+            if row.slack > 0.0 {
+                self.spec.masked_kernel_stat_with(z, relabelling)
+            } else {
+                self.spec.kernel_stat_with(z, relabelling)
+            }
         };
         if near {
             for (j, &v) in tile.iter().enumerate() {
@@ -495,7 +544,7 @@ impl Kernel {
         }
         if over {
             for (j, &v) in tile.iter().enumerate() {
-                if v > floors[j] {
+                if v + row.slack > floors[j] {
                     let e = exact_at(j);
                     if e > maxima[j] {
                         maxima[j] = e;
@@ -516,14 +565,18 @@ struct RowCheck {
     above: f32,
     below: f32,
     threshold: f64,
+    /// Extra f32 error of a masked row against the maxima's floors (0 for
+    /// complete rows; positive marks a masked row).
+    slack: f32,
 }
 
 impl RowCheck {
-    fn new(obs: f64, band: f64) -> Self {
+    fn new(obs: f64, band: f64, slack: f32) -> Self {
         RowCheck {
             above: (obs + band) as f32,
             below: (obs - band) as f32,
             threshold: obs - tie_tolerance(obs),
+            slack,
         }
     }
 }
@@ -572,20 +625,29 @@ impl RankState {
 struct RowBuffers {
     z32: Vec<f32>,
     sq32: Vec<f32>,
+    /// 1 where observed (only when some row has missing values).
+    mask32: Vec<f32>,
     band: Vec<f64>,
+    slack: Vec<f32>,
+    /// Observed units per row.
+    observed: Vec<usize>,
 }
 
 #[derive(Default)]
 struct TileBuffers {
     sums: Vec<f32>,
     squares: Vec<f32>,
+    masks: Vec<f32>,
 }
 
 struct RowsView<'a> {
     rows: usize,
     z32: &'a [f32],
     sq32: &'a [f32],
+    mask32: &'a [f32],
     band: &'a [f64],
+    slack: &'a [f32],
+    observed: &'a [usize],
 }
 
 /// Relabelling `b` in the form the test's statistic needs.

@@ -7,6 +7,7 @@
 //! S1 (the group-B sum of standardized values or mid-ranks) for Student,
 //! mean difference and rank-sum, and the Welch t itself for Welch.
 
+pub mod masked;
 pub mod prepare;
 pub mod relabelled;
 

@@ -18,6 +18,8 @@ pub enum Status {
     MissingValues = 2,
     NonFinite = 3,
     NoWithinVariance = 4,
+    /// Fewer observed (non-missing) values than `--min-observed` in a group.
+    TooFewObserved = 5,
 }
 
 impl Status {
@@ -28,6 +30,7 @@ impl Status {
             2 => Status::MissingValues,
             3 => Status::NonFinite,
             4 => Status::NoWithinVariance,
+            5 => Status::TooFewObserved,
             _ => return None,
         })
     }
@@ -36,9 +39,10 @@ impl Status {
         match self {
             Status::Tested => "",
             Status::Constant => "constant",
-            Status::MissingValues => "missing values",
+            Status::MissingValues => "missing values (not masked in this design)",
             Status::NonFinite => "infinite values",
             Status::NoWithinVariance => "no variance within groups",
+            Status::TooFewObserved => "too few observed values",
         }
     }
 }
@@ -59,6 +63,9 @@ pub struct TestSpec {
     /// With covariates: the linear model (Freedman–Lane permutation of
     /// residuals; kernel sums are against the permuted model basis).
     pub model: Option<LinearModel>,
+    /// Fewest observed values per group a feature with missing values
+    /// needs to be tested (two-group tests; see `masked`).
+    pub min_observed: usize,
 }
 
 /// Which relabelling a kernel statistic is computed for.
@@ -73,6 +80,18 @@ pub enum Assignment<'a> {
     /// The observed design: observed classes, trait order, no flips.
     Observed(&'a [u8]),
 }
+
+/// What `two_group_core` finds for a testable row.
+pub(crate) struct TwoGroupCore {
+    pub effect: f64,
+    pub statistic: f64,
+    pub p_param: f64,
+    pub abs_sum: f64,
+}
+
+/// Default of `--min-observed`: observed values per group a feature with
+/// missing values needs (see the option's help for why three).
+pub const DEFAULT_MIN_OBSERVED: usize = 3;
 
 /// Most classes a group test may have.
 pub const MAX_GROUPS: usize = 32;
@@ -89,10 +108,13 @@ pub struct Prepared {
     pub kernel_obs: f64,
     /// Sum of |z|, which bounds the f32 rounding error of group sums.
     pub abs_sum: f64,
+    /// Observed (non-missing) values per group when the row has missing
+    /// values; `None` for complete rows.
+    pub observed: Option<Sizes>,
 }
 
 impl Prepared {
-    fn untested(status: Status, effect: f64) -> Self {
+    pub(crate) fn untested(status: Status, effect: f64) -> Self {
         Prepared {
             status,
             effect,
@@ -100,6 +122,7 @@ impl Prepared {
             p_param: f64::NAN,
             kernel_obs: f64::NAN,
             abs_sum: 0.0,
+            observed: None,
         }
     }
 }
@@ -107,6 +130,9 @@ impl Prepared {
 /// Reusable buffers so preparation does not allocate per feature.
 #[derive(Default)]
 pub struct PrepScratch {
+    pub(crate) observed_raw: Vec<f64>,
+    pub(crate) observed_labels: Vec<u8>,
+    pub(crate) observed_z: Vec<f64>,
     order: Vec<usize>,
     ranks: Vec<f64>,
     diffs: Vec<f64>,
@@ -136,6 +162,7 @@ impl TestSpec {
             group_sizes: vec![sizes.n_a, sizes.n_b],
             trait_weights: Vec::new(),
             model: None,
+            min_observed: DEFAULT_MIN_OBSERVED,
         }
     }
 
@@ -326,11 +353,14 @@ impl TestSpec {
         z: &mut [f64],
         scratch: &mut PrepScratch,
     ) -> Prepared {
-        if raw.iter().any(|v| v.is_nan()) {
-            return Prepared::untested(Status::MissingValues, f64::NAN);
-        }
         if raw.iter().any(|v| v.is_infinite()) {
             return Prepared::untested(Status::NonFinite, f64::NAN);
+        }
+        if raw.iter().any(|v| v.is_nan()) {
+            if self.supports_missing() {
+                return self.prepare_masked(raw, labels, z, scratch);
+            }
+            return Prepared::untested(Status::MissingValues, f64::NAN);
         }
         if let Some(model) = &self.model {
             return self.prepare_model(model, raw, labels, z);
@@ -361,6 +391,7 @@ impl TestSpec {
             p_param,
             kernel_obs: self.kernel_stat_with(z, Assignment::Observed(labels)),
             abs_sum,
+            observed: None,
         }
     }
 
@@ -371,7 +402,23 @@ impl TestSpec {
         z: &mut [f64],
         scratch: &mut PrepScratch,
     ) -> Prepared {
-        let sizes = self.sizes;
+        match self.two_group_core(raw, labels, self.sizes, z, scratch) {
+            Ok(c) => self.finish_prepared(z, labels, c.abs_sum, c.effect, c.statistic, c.p_param),
+            Err(untested) => untested,
+        }
+    }
+
+    /// Effect, statistic and model-based p-value of two groups of the given
+    /// sizes (all of `raw` observed), with `z` the standardized values or
+    /// mid-ranks.
+    pub(crate) fn two_group_core(
+        &self,
+        raw: &[f64],
+        labels: &[u8],
+        sizes: Sizes,
+        z: &mut [f64],
+        scratch: &mut PrepScratch,
+    ) -> Result<TwoGroupCore, Prepared> {
         let (mut sum_a, mut sum_b) = (0.0, 0.0);
         for (&v, &l) in raw.iter().zip(labels) {
             if l == 1 {
@@ -384,10 +431,10 @@ impl TestSpec {
         let effect = mean_b - mean_a;
         let first = raw[0];
         if raw.iter().all(|&v| v == first) {
-            return Prepared::untested(Status::Constant, effect);
+            return Err(Prepared::untested(Status::Constant, effect));
         }
         if self.test != TestKind::RankSum && no_within_variance(raw, labels) {
-            return Prepared::untested(Status::NoWithinVariance, effect);
+            return Err(Prepared::untested(Status::NoWithinVariance, effect));
         }
         let mut tie_sum = 0.0;
         let source: &[f64] = if self.test.uses_ranks() {
@@ -425,7 +472,12 @@ impl TestSpec {
                 (u, rank_sum_pvalue(u, sizes, tie_sum, self.side))
             }
         };
-        self.finish_prepared(z, labels, abs_sum, effect, statistic, p_param)
+        Ok(TwoGroupCore {
+            effect,
+            statistic,
+            p_param,
+            abs_sum,
+        })
     }
 
     /// The model's t for the effect of interest after the covariates, on
@@ -489,7 +541,7 @@ impl TestSpec {
 
     /// One-way F or Kruskal–Wallis H; effect = eta squared (share of the
     /// total sum of squares, of values or mid-ranks, between groups).
-    fn prepare_k_groups(
+    pub(super) fn prepare_k_groups(
         &self,
         raw: &[f64],
         labels: &[u8],

@@ -4,7 +4,7 @@
 //! relabelings, drawn again from the recorded seed.
 
 use super::prepare::{standardize, PrepScratch, Status, TestSpec};
-use super::{mid_ranks, welch_t, DesignKind, GroupSums, TestKind};
+use super::{mid_ranks, welch_t, DesignKind, GroupSums, Sizes, TestKind};
 use crate::design::Relabelings;
 
 /// The reported statistic of `raw` under every relabelling, in relabelling
@@ -92,6 +92,23 @@ pub fn model_reference(spec: &TestSpec, raw: &[f64], labels: &[u8]) -> ModelRefe
             };
         }
         return ModelReference::StudentT { df: model.df };
+    }
+    if spec.supports_missing() && raw.iter().any(|v| v.is_nan()) {
+        // The test was on the observed values: their sizes, ties and df.
+        let (values, classes): (Vec<f64>, Vec<u8>) = raw
+            .iter()
+            .zip(labels)
+            .filter(|(v, _)| !v.is_nan())
+            .map(|(&v, &l)| (v, l))
+            .unzip();
+        let n_b = classes.iter().filter(|&&l| l == 1).count();
+        let mut observed = spec.clone();
+        observed.sizes = Sizes {
+            n_a: values.len() - n_b,
+            n_b,
+        };
+        observed.group_sizes = vec![observed.sizes.n_a, n_b];
+        return model_reference(&observed, &values, &classes);
     }
     match spec.test {
         TestKind::PairedT => ModelReference::StudentT { df: na - 1.0 },

@@ -8,7 +8,14 @@ files, runs `riffle scan` for every test and side, and compares
 - p_perm with scipy.stats.permutation_test(..., n_resamples=np.inf), i.e. the
   exact permutation p-value over all 126 splits, to 1e-12;
 - p_param with scipy.stats.ttest_ind (equal_var False/True) and
-  scipy.stats.mannwhitneyu (asymptotic, continuity-corrected), to 1e-10.
+  scipy.stats.mannwhitneyu (asymptotic, continuity-corrected), to 1e-10;
+- with missing values (a text matrix with NA, NaN and empty cells, 5 vs 5
+  samples): p_param with ttest_ind(nan_policy='omit') and mannwhitneyu on
+  the observed values, and p_perm with scipy.stats.permutation_test over
+  all 252 splits of the ten samples with a statistic that drops the
+  missing values (riffle's relabelings move every sample; a missing one
+  drops out of whichever group it lands in); the same for one-way F and
+  Kruskal-Wallis (f_oneway, kruskal) on 3 + 3 + 3 samples.
 Exits 0 when everything agrees, 1 otherwise.
 """
 
@@ -256,6 +263,123 @@ def check_designs(folder):
     return failures
 
 
+def check_missing(folder):
+    """Features with missing values: p_param as scipy on the observed values,
+    exact p_perm as scipy.stats.permutation_test with a NaN-dropping
+    statistic; the matrix is text with NA, NaN and empty cells."""
+    rng = np.random.default_rng(77)
+    n_a = n_b = 5
+    group_b = np.r_[np.zeros(n_a), np.ones(n_b)]
+    rows = []
+    for k in range(8):
+        row = rng.normal(size=n_a + n_b) + 0.5 * k * group_b
+        row[rng.choice(n_a + n_b, size=1 + k % 3, replace=False)] = np.nan
+        rows.append(row)
+    rows.append(np.array([1, 2, np.nan, 1, 3, 1, 2, 2, 3, 2], dtype=float))
+    rows.append(np.array([0, 1, 1, np.nan, 1, 0, np.nan, 1, 1, 0], dtype=float))
+    samples = [f"m{i}" for i in range(n_a + n_b)]
+    tokens = ["NA", "", "NaN"]
+    lines = ["feature\t" + "\t".join(samples)]
+    for k, row in enumerate(rows):
+        cells = [tokens[(k + i) % 3] if np.isnan(v) else repr(float(v)) for i, v in enumerate(row)]
+        lines.append(f"g{k}\t" + "\t".join(cells))
+    matrix = folder / "missing.tsv"
+    matrix.write_text("\n".join(lines) + "\n")
+    sheet = folder / "missing-sheet.tsv"
+    sheet.write_text("sample\tgroup\n" + "".join(
+        f"{s}\t{'A' if i < n_a else 'B'}\n" for i, s in enumerate(samples)))
+
+    def observed_stat(test, x, y):
+        """Signed statistic of B = x against A = y on their observed values;
+        0 when a group has too few values for it (riffle's documented rule;
+        mean-diff is permuted through the pooled-variance t)."""
+        x, y = x[~np.isnan(x)], y[~np.isnan(y)]
+        if test == "welch":
+            if len(x) < 2 or len(y) < 2:
+                return 0.0
+            t = stats.ttest_ind(x, y, equal_var=False).statistic
+            return 0.0 if np.isnan(t) else t
+        if len(x) == 0 or len(y) == 0:
+            return 0.0
+        if test in ("student", "mean-diff"):
+            return stats.ttest_ind(x, y, equal_var=True).statistic
+        # Tie-corrected z-score of the Mann-Whitney U of B (no continuity).
+        nx, ny = len(x), len(y)
+        n = nx + ny
+        _, counts = np.unique(np.r_[x, y], return_counts=True)
+        ties = float(np.sum(counts ** 3 - counts))
+        u = stats.mannwhitneyu(x, y, method="asymptotic").statistic
+        return (u - nx * ny / 2) / np.sqrt(nx * ny / 12 * ((n + 1) - ties / (n * (n - 1))))
+
+    failures = 0
+    for test in ["welch", "student", "mean-diff", "rank-sum"]:
+        for side in ["both", "greater", "less"]:
+            res = scan(matrix, sheet, folder / f"out-missing-{test}-{side}",
+                       ["--test", test, "--group", "group", "--levels", "A,B", "--side", side,
+                        "--perms", "1000", "--min-observed", "2"])
+            alternative = "two-sided" if side == "both" else side
+            worst_param = worst_perm = 0.0
+            for r, row in zip(res, rows):
+                a, b = row[:n_a], row[n_a:]
+                ao, bo = a[~np.isnan(a)], b[~np.isnan(b)]
+                if test == "rank-sum":
+                    p_ref = stats.mannwhitneyu(bo, ao, use_continuity=True, alternative=alternative,
+                                               method="asymptotic").pvalue
+                else:
+                    p_ref = stats.ttest_ind(b, a, equal_var=(test != "welch"), nan_policy="omit",
+                                            alternative=alternative).pvalue
+                if side == "both":
+                    statistic = lambda x, y, t=test: abs(observed_stat(t, x, y))
+                    alt = "greater"
+                else:
+                    statistic = lambda x, y, t=test: observed_stat(t, x, y)
+                    alt = side
+                perm = stats.permutation_test((b, a), statistic, permutation_type="independent",
+                                              n_resamples=np.inf, alternative=alt).pvalue
+                worst_param = max(worst_param, abs(float(r["p_param"]) - p_ref))
+                worst_perm = max(worst_perm, abs(float(r["p_perm"]) - perm))
+                if (int(r["n_a"]), int(r["n_b"])) != (len(ao), len(bo)):
+                    worst_param = math.inf
+            ok = worst_param <= 1e-10 and worst_perm <= 1e-12
+            failures += not ok
+            print(f"{'ok ' if ok else 'BAD'} missing {test:9} {side:7} max|p_param - scipy| = {worst_param:.2e}"
+                  f"  max|p_perm - scipy| = {worst_perm:.2e}")
+
+    # k groups (3 + 3 + 3 samples, 1680 arrangements): f_oneway and kruskal
+    # on the observed values; a class left without values scores 0.
+    classes = np.array([0, 1, 2] * 3)
+    samples = [f"q{i}" for i in range(len(classes))]
+    rows = []
+    for k in range(6):
+        row = rng.normal(size=len(classes)) + 0.6 * k * classes
+        # One or two values missing, never two of one class.
+        row[[k % 9, (k + 4) % 9][: 1 + k % 2]] = np.nan
+        rows.append(row)
+    matrix = write_matrix(folder, "kmissing.arrow", rows, samples)
+    sheet = folder / "kmissing.tsv"
+    sheet.write_text("sample\tdose\n" + "".join(f"{s}\td{c}\n" for s, c in zip(samples, classes)))
+    for test, ref in [("anova", stats.f_oneway), ("kruskal", stats.kruskal)]:
+        res = scan(matrix, sheet, folder / f"out-missing-{test}",
+                   ["--test", test, "--group", "dose", "--perms", "5000", "--min-observed", "2"])
+        worst_param = worst_perm = 0.0
+        for r, row in zip(res, rows):
+            groups = [row[classes == g] for g in range(3)]
+
+            def statistic(*gs, ref=ref):
+                gs = [g[~np.isnan(g)] for g in gs]
+                return 0.0 if any(len(g) == 0 for g in gs) else ref(*gs).statistic
+            p_ref = ref(*[g[~np.isnan(g)] for g in groups]).pvalue
+            perm = stats.permutation_test(groups, statistic, permutation_type="independent",
+                                          n_resamples=np.inf, alternative="greater").pvalue
+            worst_param = max(worst_param, abs(float(r["p_param"]) - p_ref))
+            worst_perm = max(worst_perm, abs(float(r["p_perm"]) - perm))
+        ok = worst_param <= 1e-10 and worst_perm <= 1e-12
+        failures += not ok
+        print(f"{'ok ' if ok else 'BAD'} missing {test:9} both    max|p_param - scipy| = {worst_param:.2e}"
+              f"  max|p_perm - scipy| = {worst_perm:.2e}")
+    return failures
+
+
 def main():
     rows = features()
     failures = 0
@@ -279,6 +403,7 @@ def main():
                 print(f"{'ok ' if ok else 'BAD'} {test:9} {side:7} max|p_perm - scipy| = {worst_perm:.2e}"
                       f"  max|p_param - scipy| = {worst_param:.2e}")
         failures += check_designs(folder)
+        failures += check_missing(folder)
     print(f"scipy cross-check: {checked} two-group feature-tests compared; {failures} configurations failed")
     return 1 if failures else 0
 

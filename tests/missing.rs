@@ -1,0 +1,887 @@
+//! Features with missing values are tested on their observed samples:
+//! statistics from the textbook formulas on the observed values, exact
+//! permutation p-values against brute force over every split of all
+//! samples (the missing ones drop out of whichever group they land in),
+//! maxT across complete and masked features, `--min-observed`, and
+//! complete features unchanged by masked ones beside them.
+
+mod common;
+
+use common::{options, scan_rows, Table, TestRng};
+use riffle::design::Relabelings;
+use riffle::stats::{Side, TestKind};
+
+/// Observed values of group B (`true`) or A under a split.
+fn observed(x: &[f64], in_b: &[bool], b: bool) -> Vec<f64> {
+    x.iter()
+        .zip(in_b)
+        .filter(|(v, &g)| g == b && !v.is_nan())
+        .map(|(v, _)| *v)
+        .collect()
+}
+
+fn mean(v: &[f64]) -> f64 {
+    v.iter().sum::<f64>() / v.len() as f64
+}
+
+fn var(v: &[f64]) -> f64 {
+    let m = mean(v);
+    v.iter().map(|x| (x - m) * (x - m)).sum::<f64>() / (v.len() as f64 - 1.0)
+}
+
+/// Signed statistic of a split on the observed values, from the textbook
+/// definitions; a split that leaves a group too few values for the
+/// statistic scores 0 (riffle's documented rule). Mean difference is
+/// permuted through the pooled-variance t, as riffle documents.
+fn textbook(test: TestKind, x: &[f64], in_b: &[bool]) -> f64 {
+    let (a, b) = (observed(x, in_b, false), observed(x, in_b, true));
+    let (na, nb) = (a.len() as f64, b.len() as f64);
+    match test {
+        TestKind::Welch => {
+            if a.len() < 2 || b.len() < 2 {
+                return 0.0;
+            }
+            let t = (mean(&b) - mean(&a)) / (var(&a) / na + var(&b) / nb).sqrt();
+            if t.is_nan() {
+                0.0
+            } else {
+                t
+            }
+        }
+        TestKind::Student | TestKind::MeanDiff => {
+            if a.is_empty() || b.is_empty() {
+                return 0.0;
+            }
+            let ss = |v: &[f64]| {
+                let m = mean(v);
+                v.iter().map(|x| (x - m) * (x - m)).sum::<f64>()
+            };
+            let pooled = (ss(&a) + ss(&b)) / (na + nb - 2.0);
+            (mean(&b) - mean(&a)) / (pooled * (1.0 / na + 1.0 / nb)).sqrt()
+        }
+        TestKind::RankSum => {
+            // Tie-corrected z-score of the Mann–Whitney U of B, without
+            // continuity correction (Hollander & Wolfe, "Nonparametric
+            // Statistical Methods", the large-sample form with ties).
+            if a.is_empty() || b.is_empty() {
+                return 0.0;
+            }
+            let all: Vec<f64> = a.iter().chain(&b).copied().collect();
+            let n = all.len() as f64;
+            let rank = |v: f64| {
+                let below = all.iter().filter(|&&y| y < v).count() as f64;
+                let equal = all.iter().filter(|&&y| y == v).count() as f64;
+                below + (equal + 1.0) / 2.0
+            };
+            let u = b.iter().map(|&v| rank(v)).sum::<f64>() - nb * (nb + 1.0) / 2.0;
+            let mut ties = 0.0;
+            let mut seen: Vec<f64> = Vec::new();
+            for &v in &all {
+                if !seen.contains(&v) {
+                    seen.push(v);
+                    let t = all.iter().filter(|&&y| y == v).count() as f64;
+                    ties += t * t * t - t;
+                }
+            }
+            let sd = (na * nb / 12.0 * ((n + 1.0) - ties / (n * (n - 1.0)))).sqrt();
+            (u - na * nb / 2.0) / sd
+        }
+        other => unreachable!("{other:?}"),
+    }
+}
+
+fn orient(side: Side, t: f64) -> f64 {
+    match side {
+        Side::Both => t.abs(),
+        Side::Greater => t,
+        Side::Less => -t,
+    }
+}
+
+/// Exact p by listing every split of all samples into the design's group
+/// sizes (common practice, no single source).
+fn brute_force_p(test: TestKind, side: Side, x: &[f64], labels: &[u8]) -> f64 {
+    let n = x.len();
+    let k = labels.iter().filter(|&&l| l == 1).count();
+    let in_b: Vec<bool> = labels.iter().map(|&l| l == 1).collect();
+    let t_obs = orient(side, textbook(test, x, &in_b));
+    let (mut extreme, mut total) = (0u64, 0u64);
+    for mask in 0u32..(1 << n) {
+        if mask.count_ones() as usize != k {
+            continue;
+        }
+        let split: Vec<bool> = (0..n).map(|i| mask >> i & 1 == 1).collect();
+        total += 1;
+        if orient(side, textbook(test, x, &split)) >= t_obs - 1e-9 * (1.0 + t_obs.abs()) {
+            extreme += 1;
+        }
+    }
+    extreme as f64 / total as f64
+}
+
+/// Rows of 10 samples (5 vs 5) with one to three values missing, ties,
+/// and two complete rows.
+fn small_rows(labels: &[u8]) -> Vec<Vec<f64>> {
+    let mut rng = TestRng::new(23);
+    let mut rows: Vec<Vec<f64>> = (0..8)
+        .map(|f| {
+            let mut row: Vec<f64> = labels
+                .iter()
+                .map(|&l| rng.normal() + 0.5 * f as f64 * f64::from(l))
+                .collect();
+            for j in 0..=(f % 3) {
+                row[(3 * f + 4 * j) % labels.len()] = f64::NAN;
+            }
+            row
+        })
+        .collect();
+    rows.push(vec![1.0, 2.0, f64::NAN, 1.0, 3.0, 1.0, 2.0, 2.0, 3.0, 2.0]);
+    rows.push(vec![
+        0.0,
+        1.0,
+        1.0,
+        f64::NAN,
+        1.0,
+        0.0,
+        f64::NAN,
+        1.0,
+        1.0,
+        0.0,
+    ]);
+    rows.push((0..10).map(|i| (i * 7 % 10) as f64).collect());
+    rows.push((0..10).map(|_| rng.normal()).collect());
+    rows
+}
+
+#[test]
+fn exact_p_with_missing_values_equals_brute_force() {
+    let labels = [0u8, 1, 1, 0, 1, 0, 1, 0, 1, 0];
+    let rows = small_rows(&labels);
+    let dir = tempfile::tempdir().unwrap();
+    for test in [
+        TestKind::Welch,
+        TestKind::Student,
+        TestKind::MeanDiff,
+        TestKind::RankSum,
+    ] {
+        for side in [Side::Both, Side::Greater, Side::Less] {
+            let mut o = options(dir.path());
+            o.test = test;
+            o.side = side;
+            o.perms = 1000;
+            o.min_observed = 2;
+            let summary = scan_rows(&rows, &labels, &o);
+            assert!(summary.exact);
+            assert_eq!(summary.tested as usize, rows.len(), "{test:?}");
+            let table = Table::read(&summary.results_path);
+            let p = table.f64s("p_perm");
+            for (f, row) in rows.iter().enumerate() {
+                let expected = brute_force_p(test, side, row, &labels);
+                assert!(
+                    (p[f] - expected).abs() < 1e-12,
+                    "{test:?} {side:?} feature {f}: riffle {} brute force {expected}",
+                    p[f]
+                );
+            }
+        }
+    }
+}
+
+#[test]
+fn statistics_and_counts_are_those_of_the_observed_values() {
+    let labels = [0u8, 1, 1, 0, 1, 0, 1, 0, 1, 0];
+    let rows = small_rows(&labels);
+    let in_b: Vec<bool> = labels.iter().map(|&l| l == 1).collect();
+    let dir = tempfile::tempdir().unwrap();
+    for test in [TestKind::Welch, TestKind::Student, TestKind::MeanDiff] {
+        let mut o = options(dir.path());
+        o.test = test;
+        o.perms = 200;
+        o.min_observed = 2;
+        let summary = scan_rows(&rows, &labels, &o);
+        let table = Table::read(&summary.results_path);
+        let (stat, effect) = (table.f64s("statistic"), table.f64s("effect"));
+        let (n_a, n_b) = (table.f64s("n_a"), table.f64s("n_b"));
+        for (f, row) in rows.iter().enumerate() {
+            let (a, b) = (observed(row, &in_b, false), observed(row, &in_b, true));
+            assert_eq!((n_a[f], n_b[f]), (a.len() as f64, b.len() as f64), "{f}");
+            let diff = mean(&b) - mean(&a);
+            assert!((effect[f] - diff).abs() < 1e-12, "{test:?} {f}");
+            let expected = if test == TestKind::MeanDiff {
+                diff
+            } else {
+                textbook(test, row, &in_b)
+            };
+            assert!(
+                (stat[f] - expected).abs() < 1e-9 * (1.0 + expected.abs()),
+                "{test:?} feature {f}: {} vs {expected}",
+                stat[f]
+            );
+        }
+    }
+}
+
+/// Single-step and step-down maxT (Westfall & Young 1993) over complete
+/// and masked features together, against all statistics held in memory.
+/// Welch: the kernel statistic is the Welch t of the observed values.
+/// Student: a masked feature's t is put on the complete-data scale as the
+/// group-B sum of standardized values a complete feature would need for
+/// the same t: S1 = sqrt((N-1) t^2 / (N-2+t^2) * N_a N_b / N) (riffle's
+/// documented choice; for a complete feature that is its own S1).
+#[test]
+fn maxt_compares_masked_and_complete_features_on_one_scale() {
+    let labels: Vec<u8> = (0..24).map(|i| u8::from(i % 2 == 0)).collect();
+    let n = labels.len() as f64;
+    let mut rng = TestRng::new(41);
+    let rows: Vec<Vec<f64>> = (0..120)
+        .map(|f| {
+            let shift = if f % 17 == 3 { 1.4 } else { 0.0 };
+            labels
+                .iter()
+                .map(|&l| {
+                    if f % 3 != 0 && rng.uniform() < 0.25 {
+                        f64::NAN
+                    } else {
+                        rng.normal() + shift * f64::from(l)
+                    }
+                })
+                .collect()
+        })
+        .collect();
+    let (perms, seed) = (400, 12);
+    let dir = tempfile::tempdir().unwrap();
+    for test in [TestKind::Welch, TestKind::Student] {
+        let mut o = options(dir.path());
+        o.test = test;
+        o.perms = perms;
+        o.seed = seed;
+        o.min_observed = 2;
+        o.chunk_rows = Some(37);
+        let summary = scan_rows(&rows, &labels, &o);
+        assert_eq!(summary.tested as usize, rows.len());
+        let table = Table::read(&summary.results_path);
+        let (p_maxt, p_single) = (table.f64s("p_maxt"), table.f64s("p_maxt_single"));
+        let p_perm = table.f64s("p_perm");
+        let scale = |t: f64| -> f64 {
+            match test {
+                TestKind::Welch => t.abs(),
+                _ => {
+                    let u = if t.is_infinite() {
+                        n - 1.0
+                    } else {
+                        (n - 1.0) * t * t / (n - 2.0 + t * t)
+                    };
+                    (u * 12.0 * 12.0 / n).sqrt()
+                }
+            }
+        };
+        let relabel = Relabelings::draw(&labels, perms, seed);
+        let big_b = relabel.count;
+        let split = |l: &[u8]| -> Vec<bool> { l.iter().map(|&v| v == 1).collect() };
+        let obs: Vec<f64> = rows
+            .iter()
+            .map(|x| scale(textbook(test, x, &split(&labels))))
+            .collect();
+        let null: Vec<Vec<f64>> = rows
+            .iter()
+            .map(|x| {
+                (0..big_b)
+                    .map(|b| scale(textbook(test, x, &split(relabel.row(b)))))
+                    .collect()
+            })
+            .collect();
+        let tol = 1e-9;
+        let denominator = (big_b + 1) as f64;
+        let m = rows.len();
+        let column_max: Vec<f64> = (0..big_b)
+            .map(|b| null.iter().map(|t| t[b]).fold(f64::NEG_INFINITY, f64::max))
+            .collect();
+        let mut p_tilde = vec![0.0; m];
+        for j in 0..m {
+            let exceed = null[j]
+                .iter()
+                .filter(|&&t| t >= obs[j] * (1.0 - tol))
+                .count();
+            let expected = (exceed + 1) as f64 / denominator;
+            assert!((p_perm[j] - expected).abs() < 1e-15, "{test:?} p_perm {j}");
+            let single = column_max
+                .iter()
+                .filter(|&&c| c >= obs[j] * (1.0 - tol))
+                .count();
+            let expected = (single + 1) as f64 / denominator;
+            assert!(
+                (p_single[j] - expected).abs() < 1e-15,
+                "{test:?} single-step {j}: riffle {} brute force {expected}",
+                p_single[j]
+            );
+            let reached = (0..big_b)
+                .filter(|&b| {
+                    (0..m)
+                        .filter(|&k| obs[k] <= obs[j] * (1.0 + tol))
+                        .any(|k| null[k][b] >= obs[j] * (1.0 - tol))
+                })
+                .count();
+            p_tilde[j] = (reached + 1) as f64 / denominator;
+        }
+        for j in 0..m {
+            let expected = (0..m)
+                .filter(|&k| obs[k] >= obs[j] * (1.0 - tol))
+                .map(|k| p_tilde[k])
+                .fold(0.0, f64::max);
+            assert!(
+                (p_maxt[j] - expected).abs() < 1e-15,
+                "{test:?} step-down {j}: riffle {} brute force {expected}",
+                p_maxt[j]
+            );
+        }
+    }
+}
+
+#[test]
+fn too_few_observed_values_are_untested_with_the_reason() {
+    let labels: Vec<u8> = (0..12).map(|i| u8::from(i >= 6)).collect();
+    let mut rng = TestRng::new(3);
+    let mut row = |missing_b: usize| -> Vec<f64> {
+        (0..12)
+            .map(|i| {
+                if i >= 6 && i < 6 + missing_b {
+                    f64::NAN
+                } else {
+                    rng.normal()
+                }
+            })
+            .collect()
+    };
+    // Group B keeps 3, 2, 0 observed values.
+    let rows = vec![row(3), row(4), row(6), vec![f64::NAN; 12]];
+    let dir = tempfile::tempdir().unwrap();
+    let mut o = options(dir.path());
+    o.perms = 99;
+    let summary = scan_rows(&rows, &labels, &o);
+    let table = Table::read(&summary.results_path);
+    let note = table.text("note");
+    assert_eq!(note[0], "");
+    let source = table.text("p_source");
+    for (f, (note, source)) in note.iter().zip(source).enumerate().skip(1) {
+        assert_eq!(note, "too few observed values", "feature {f}");
+        assert_eq!(source, "untested", "feature {f}");
+    }
+    assert_eq!(table.f64s("n_b")[1], 2.0);
+    o.min_observed = 2;
+    let summary = scan_rows(&rows, &labels, &o);
+    let table = Table::read(&summary.results_path);
+    assert_eq!(table.text("note")[1], "");
+    assert_eq!(table.text("note")[2], "too few observed values");
+}
+
+/// A complete feature's results do not depend on masked features beside
+/// it (the masked path is separate); the same per-feature columns whether
+/// or not masked rows are interleaved, in tiles mixing both.
+#[test]
+fn complete_features_are_unchanged_by_masked_neighbours() {
+    let labels: Vec<u8> = (0..20).map(|i| u8::from(i % 4 < 2)).collect();
+    let mut rng = TestRng::new(17);
+    let complete: Vec<Vec<f64>> = (0..150)
+        .map(|f| {
+            labels
+                .iter()
+                .map(|&l| rng.normal() + 0.02 * f as f64 * f64::from(l))
+                .collect()
+        })
+        .collect();
+    let mut mixed = Vec::new();
+    let mut where_complete = Vec::new();
+    for (f, row) in complete.iter().enumerate() {
+        where_complete.push(mixed.len());
+        mixed.push(row.clone());
+        if f % 2 == 0 {
+            let mut masked: Vec<f64> = (0..20).map(|_| rng.normal()).collect();
+            masked[f % 20] = f64::NAN;
+            mixed.push(masked);
+        }
+    }
+    for test in [TestKind::Welch, TestKind::Student, TestKind::RankSum] {
+        let dir_a = tempfile::tempdir().unwrap();
+        let dir_b = tempfile::tempdir().unwrap();
+        let mut o = options(dir_a.path());
+        o.test = test;
+        o.perms = 300;
+        o.maxt = riffle::scan::MaxtMode::Single;
+        let alone = Table::read(&scan_rows(&complete, &labels, &o).results_path);
+        o.out = dir_b.path().to_path_buf();
+        let beside = Table::read(&scan_rows(&mixed, &labels, &o).results_path);
+        for column in [
+            "effect",
+            "statistic",
+            "p_param",
+            "p_perm",
+            "n_exceed",
+            "n_a",
+            "n_b",
+        ] {
+            for (f, &g) in where_complete.iter().enumerate() {
+                assert_eq!(
+                    alone.text(column)[f],
+                    beside.text(column)[g],
+                    "{test:?} {column} feature {f}"
+                );
+            }
+        }
+    }
+}
+
+#[test]
+fn masked_results_do_not_depend_on_threads_or_chunk_size() {
+    let labels: Vec<u8> = (0..16).map(|i| u8::from(i % 3 == 0)).collect();
+    let mut rng = TestRng::new(8);
+    let rows: Vec<Vec<f64>> = (0..1500)
+        .map(|f| {
+            labels
+                .iter()
+                .map(|&l| {
+                    if rng.uniform() < 0.1 {
+                        f64::NAN
+                    } else {
+                        rng.normal() * (1.0 + f as f64 % 7.0) + f64::from(l) * 0.5
+                    }
+                })
+                .collect()
+        })
+        .collect();
+    for test in [TestKind::Welch, TestKind::Student, TestKind::RankSum] {
+        let mut outputs = Vec::new();
+        for (threads, chunk) in [(1, 5000), (2, 37), (2, 1000)] {
+            let dir = tempfile::tempdir().unwrap();
+            let mut o = options(dir.path());
+            o.test = test;
+            o.perms = 500;
+            o.threads = threads;
+            o.chunk_rows = Some(chunk);
+            o.pooled_null = true;
+            let summary = scan_rows(&rows, &labels, &o);
+            assert!(summary.tested > 1000, "{test:?}: {}", summary.tested);
+            outputs.push(std::fs::read(&summary.results_path).unwrap());
+        }
+        assert_eq!(outputs[0], outputs[1], "{test:?}: 1 vs 2 threads");
+        assert_eq!(outputs[1], outputs[2], "{test:?}: chunk sizes");
+    }
+}
+
+/// `riffle simulate --missing-fraction`: about that share of values is
+/// missing, and the observed values are those of the complete matrix of the
+/// same seed (a complete feature of both gives the same statistic).
+#[test]
+fn simulated_missing_values_leave_the_other_values_unchanged() {
+    let dir = tempfile::tempdir().unwrap();
+    let path = |name: &str| dir.path().join(name).to_str().unwrap().to_string();
+    let mut tables = Vec::new();
+    for (name, fraction) in [("complete", "0"), ("gaps", "0.1")] {
+        let matrix = path(&format!("{name}.arrow"));
+        let sheet = path("sheet.tsv");
+        let out = common::riffle(&[
+            "simulate",
+            "--out",
+            &matrix,
+            "--sheet",
+            &sheet,
+            "--features",
+            "2000",
+            "--group-sizes",
+            "12,12",
+            "--missing-fraction",
+            fraction,
+            "--seed",
+            "4",
+        ]);
+        assert!(
+            out.status.success(),
+            "{}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+        let results = path(&format!("out-{name}"));
+        let out = common::riffle(&[
+            "scan",
+            "--matrix",
+            &matrix,
+            "--samples",
+            &sheet,
+            "--group",
+            "group",
+            "--perms",
+            "99",
+            "--format",
+            "tsv",
+            "--no-report",
+            "--quiet",
+            "--out",
+            &results,
+        ]);
+        assert!(
+            out.status.success(),
+            "{}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+        tables.push(Table::read(
+            &dir.path().join(format!("out-{name}/results.tsv")),
+        ));
+    }
+    let (complete, gaps) = (&tables[0], &tables[1]);
+    let (n_a, n_b) = (gaps.f64s("n_a"), gaps.f64s("n_b"));
+    let observed: f64 = n_a.iter().zip(&n_b).map(|(a, b)| a + b).sum();
+    let share = 1.0 - observed / (2000.0 * 24.0);
+    // Binomial SD of the share over 48,000 values is 0.0014.
+    assert!((share - 0.1).abs() < 0.01, "missing share {share}");
+    let mut whole = 0;
+    for f in 0..2000 {
+        if n_a[f] + n_b[f] == 24.0 {
+            whole += 1;
+            assert_eq!(
+                complete.text("statistic")[f],
+                gaps.text("statistic")[f],
+                "{f}"
+            );
+        }
+    }
+    // 0.9^24 = 8% of features keep all their values.
+    assert!(whole > 80, "{whole} complete features");
+}
+
+/// The f32 GEMM path with its f64 rechecks counts exactly what an all-f64
+/// computation counts, on masked rows with large offsets, heavy missing
+/// shares, ties and strong effects (sampled relabelings, 60 samples).
+#[test]
+fn masked_counts_equal_an_all_f64_count() {
+    let labels: Vec<u8> = (0..60).map(|i| u8::from(i % 5 < 2)).collect();
+    let mut rng = TestRng::new(99);
+    let mut rows: Vec<Vec<f64>> = (0..90)
+        .map(|f| {
+            let offset = [0.0, 1e4, -3e6][f % 3];
+            let scale = [1.0, 1e-2, 50.0][f / 3 % 3];
+            let shift = [0.0, 0.3, 1.0, 3.0][f % 4];
+            let missing = [0.02, 0.15, 0.4][f / 9 % 3];
+            labels
+                .iter()
+                .map(|&l| {
+                    if rng.uniform() < missing {
+                        f64::NAN
+                    } else {
+                        offset + scale * (rng.normal() + shift * f64::from(l))
+                    }
+                })
+                .collect()
+        })
+        .collect();
+    rows[10] = rows[4].clone();
+    for row in rows.iter_mut().skip(60).step_by(3) {
+        for v in row.iter_mut() {
+            *v = (*v * 0.5).round();
+        }
+    }
+    let (perms, seed) = (800, 21);
+    let relabel = Relabelings::draw(&labels, perms, seed);
+    let split = |l: &[u8]| -> Vec<bool> { l.iter().map(|&v| v == 1).collect() };
+    let dir = tempfile::tempdir().unwrap();
+    for test in [TestKind::Welch, TestKind::Student, TestKind::RankSum] {
+        for side in [Side::Both, Side::Less] {
+            let mut o = options(dir.path());
+            o.test = test;
+            o.side = side;
+            o.perms = perms;
+            o.seed = seed;
+            o.maxt = riffle::scan::MaxtMode::Single;
+            let summary = scan_rows(&rows, &labels, &o);
+            let table = Table::read(&summary.results_path);
+            let exceed = table.f64s("n_exceed");
+            let note = table.text("note");
+            for (f, x) in rows.iter().enumerate() {
+                if !note[f].is_empty() {
+                    continue;
+                }
+                let obs = orient(side, textbook(test, x, &split(&labels)));
+                let count = (0..relabel.count)
+                    .filter(|&b| {
+                        orient(side, textbook(test, x, &split(relabel.row(b))))
+                            >= obs - 1e-9 * (1.0 + obs.abs())
+                    })
+                    .count();
+                assert_eq!(exceed[f], count as f64, "{test:?} {side:?} feature {f}");
+            }
+            assert!(summary.tested > 80, "{test:?}: {}", summary.tested);
+        }
+    }
+}
+
+/// One-way F and tie-corrected Kruskal–Wallis H on the observed values of
+/// each class, from their textbook definitions (Kruskal & Wallis 1952,
+/// JASA 47, with the tie correction 1 - sum(t^3 - t)/(n^3 - n)); 0 when a
+/// class has no observed value (riffle's documented rule).
+fn k_group_statistic(test: TestKind, x: &[f64], classes: &[usize], k: usize) -> f64 {
+    let kept: Vec<(f64, usize)> = x
+        .iter()
+        .zip(classes)
+        .filter(|(v, _)| !v.is_nan())
+        .map(|(&v, &c)| (v, c))
+        .collect();
+    let n = kept.len() as f64;
+    let values: Vec<f64> = if test == TestKind::Kruskal {
+        kept.iter()
+            .map(|(v, _)| {
+                kept.iter().filter(|(y, _)| y < v).count() as f64
+                    + (kept.iter().filter(|(y, _)| y == v).count() as f64 + 1.0) / 2.0
+            })
+            .collect()
+    } else {
+        kept.iter().map(|(v, _)| *v).collect()
+    };
+    let group = |g: usize| -> Vec<f64> {
+        values
+            .iter()
+            .zip(&kept)
+            .filter(|(_, (_, c))| *c == g)
+            .map(|(v, _)| *v)
+            .collect()
+    };
+    if (0..k).any(|g| group(g).is_empty()) {
+        return 0.0;
+    }
+    if test == TestKind::Kruskal {
+        let mut h = -3.0 * (n + 1.0);
+        for g in 0..k {
+            let r = group(g);
+            h += 12.0 / (n * (n + 1.0)) * r.iter().sum::<f64>().powi(2) / r.len() as f64;
+        }
+        let mut ties = 0.0;
+        let mut seen: Vec<f64> = Vec::new();
+        for &(v, _) in &kept {
+            if !seen.contains(&v) {
+                seen.push(v);
+                let t = kept.iter().filter(|(y, _)| *y == v).count() as f64;
+                ties += t * t * t - t;
+            }
+        }
+        return h / (1.0 - ties / (n * n * n - n));
+    }
+    let grand = mean(&values);
+    let (mut ssb, mut ssw) = (0.0, 0.0);
+    for g in 0..k {
+        let v = group(g);
+        let m = mean(&v);
+        ssb += v.len() as f64 * (m - grand) * (m - grand);
+        ssw += v.iter().map(|a| (a - m) * (a - m)).sum::<f64>();
+    }
+    (ssb / (k as f64 - 1.0)) / (ssw / (n - k as f64))
+}
+
+/// Every distinct arrangement of class labels (common practice, no single
+/// source): recursive placement of a multiset.
+fn arrangements(items: &[usize]) -> Vec<Vec<usize>> {
+    fn place(rest: &mut Vec<usize>, current: &mut Vec<usize>, out: &mut Vec<Vec<usize>>) {
+        if rest.is_empty() {
+            out.push(current.clone());
+            return;
+        }
+        let mut seen = Vec::new();
+        for i in 0..rest.len() {
+            if seen.contains(&rest[i]) {
+                continue;
+            }
+            seen.push(rest[i]);
+            let v = rest.remove(i);
+            current.push(v);
+            place(rest, current, out);
+            current.pop();
+            rest.insert(i, v);
+        }
+    }
+    let mut sorted = items.to_vec();
+    sorted.sort();
+    let mut out = Vec::new();
+    place(&mut sorted, &mut Vec::new(), &mut out);
+    out
+}
+
+#[test]
+fn k_groups_with_missing_values_equal_brute_force() {
+    let classes = [0usize, 1, 2, 0, 1, 2, 0, 1, 2];
+    let mut rng = TestRng::new(6);
+    let mut rows: Vec<Vec<f64>> = (0..6)
+        .map(|f| {
+            let mut row: Vec<f64> = classes
+                .iter()
+                .map(|&c| rng.normal() + 0.6 * f as f64 * c as f64)
+                .collect();
+            row[f % 9] = f64::NAN;
+            if f % 2 == 1 {
+                row[(f + 4) % 9] = f64::NAN;
+            }
+            row
+        })
+        .collect();
+    rows.push(vec![1.0, 2.0, 2.0, 1.0, f64::NAN, 3.0, 2.0, 3.0, 3.0]);
+    let mut sheet = String::from("sample\tgroup\n");
+    for (i, c) in classes.iter().enumerate() {
+        sheet.push_str(&format!("s{i}\tg{c}\n"));
+    }
+    let columns = riffle::design::DesignColumns {
+        group: Some("group".into()),
+        ..Default::default()
+    };
+    let all = arrangements(&classes);
+    let dir = tempfile::tempdir().unwrap();
+    for test in [TestKind::Anova, TestKind::Kruskal] {
+        let mut o = options(dir.path());
+        o.test = test;
+        o.perms = 5000;
+        o.min_observed = 2;
+        let summary = common::scan_with_sheet(
+            &rows,
+            &sheet,
+            riffle::stats::DesignKind::Groups,
+            &columns,
+            &o,
+        );
+        assert!(summary.exact);
+        assert_eq!(summary.tested as usize, rows.len(), "{test:?}");
+        let table = Table::read(&summary.results_path);
+        let (p, stat, n_a) = (
+            table.f64s("p_perm"),
+            table.f64s("statistic"),
+            table.f64s("n_a"),
+        );
+        for (f, row) in rows.iter().enumerate() {
+            let observed = k_group_statistic(test, row, &classes, 3);
+            assert!(
+                (stat[f] - observed).abs() < 1e-9 * (1.0 + observed),
+                "{test:?} feature {f}: statistic {} vs {observed}",
+                stat[f]
+            );
+            assert_eq!(n_a[f], row.iter().filter(|v| !v.is_nan()).count() as f64);
+            let reached = all
+                .iter()
+                .filter(|a| {
+                    k_group_statistic(test, row, a, 3) >= observed - 1e-9 * (1.0 + observed)
+                })
+                .count();
+            let expected = reached as f64 / all.len() as f64;
+            assert!(
+                (p[f] - expected).abs() < 1e-12,
+                "{test:?} feature {f}: p_perm {} vs brute force {expected}",
+                p[f]
+            );
+        }
+    }
+}
+
+/// Designs without masking say so for a feature with missing values.
+#[test]
+fn unmasked_designs_name_the_reason() {
+    let trait_values = [3.1, 0.5, 2.2, 4.8, 1.0, 2.6, 1.7, 0.9];
+    let mut sheet = String::from("sample\tage\n");
+    for (i, t) in trait_values.iter().enumerate() {
+        sheet.push_str(&format!("s{i}\t{t}\n"));
+    }
+    let mut rng = TestRng::new(12);
+    let mut rows: Vec<Vec<f64>> = (0..3)
+        .map(|_| (0..8).map(|_| rng.normal()).collect())
+        .collect();
+    rows[1][4] = f64::NAN;
+    let columns = riffle::design::DesignColumns {
+        trait_column: Some("age".into()),
+        ..Default::default()
+    };
+    let dir = tempfile::tempdir().unwrap();
+    let mut o = options(dir.path());
+    o.test = TestKind::Pearson;
+    o.perms = 99;
+    let summary = common::scan_with_sheet(
+        &rows,
+        &sheet,
+        riffle::stats::DesignKind::Trait,
+        &columns,
+        &o,
+    );
+    let table = Table::read(&summary.results_path);
+    let note = table.text("note");
+    assert_eq!(note[0], "");
+    assert_eq!(note[1], "missing values (not masked in this design)");
+    assert!(table.f64s("p_perm")[1].is_nan());
+}
+
+/// Shards and merge give the single run's bytes with masked features
+/// (their standardized rows carry the mask into the step-down pass).
+#[test]
+fn shards_with_missing_values_merge_to_the_single_run() {
+    let dir = tempfile::tempdir().unwrap();
+    let path = |name: &str| dir.path().join(name).to_str().unwrap().to_string();
+    let (matrix, sheet) = (path("m.arrow"), path("s.tsv"));
+    let out = common::riffle(&[
+        "simulate",
+        "--out",
+        &matrix,
+        "--sheet",
+        &sheet,
+        "--features",
+        "1500",
+        "--group-sizes",
+        "7,9",
+        "--missing-fraction",
+        "0.15",
+        "--seed",
+        "2",
+    ]);
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let scan = |out_dir: &str, shard: Option<&str>| {
+        let mut args = vec![
+            "scan",
+            "--matrix",
+            &matrix,
+            "--samples",
+            &sheet,
+            "--group",
+            "group",
+            "--test",
+            "student",
+            "--perms",
+            "300",
+            "--pooled-null",
+            "--format",
+            "tsv",
+            "--no-report",
+            "--quiet",
+            "--out",
+            out_dir,
+        ];
+        if let Some(s) = shard {
+            args.extend(["--shard", s]);
+        }
+        let out = common::riffle(&args);
+        assert!(
+            out.status.success(),
+            "{}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+    };
+    let (single, one, two, merged) = (path("single"), path("one"), path("two"), path("merged"));
+    scan(&single, None);
+    scan(&one, Some("1/2"));
+    scan(&two, Some("2/2"));
+    let out = common::riffle(&["merge", &one, &two, "--out", &merged, "--quiet"]);
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let a = std::fs::read(dir.path().join("single/results.tsv")).unwrap();
+    let b = std::fs::read(dir.path().join("merged/results.tsv")).unwrap();
+    assert!(a == b, "merged shards differ from the single run");
+    let table = Table::read(&dir.path().join("single/results.tsv"));
+    let observed: f64 = table.f64s("n_a").iter().chain(&table.f64s("n_b")).sum();
+    assert!(
+        observed < 0.9 * 1500.0 * 16.0,
+        "the matrix has missing values"
+    );
+}
