@@ -35,6 +35,12 @@ pub enum PSource {
     Counted = 0,
     /// Every distinct relabelling enumerated.
     Exact = 1,
+    /// h / L: sequential stopping at the h-th exceedance after L
+    /// relabelings (Besag & Clifford 1991).
+    Sequential = 2,
+    /// Phipson & Smyth (2010) exact p for B draws with replacement from a
+    /// space of m_t distinct relabelings.
+    PhipsonSmyth = 4,
 }
 
 impl PSource {
@@ -42,12 +48,16 @@ impl PSource {
         match self {
             PSource::Counted => "counted",
             PSource::Exact => "exact",
+            PSource::Sequential => "sequential",
+            PSource::PhipsonSmyth => "phipson-smyth",
         }
     }
     fn from_code(code: u8) -> Option<Self> {
         match code {
             0 => Some(PSource::Counted),
             1 => Some(PSource::Exact),
+            2 => Some(PSource::Sequential),
+            4 => Some(PSource::PhipsonSmyth),
             _ => None,
         }
     }

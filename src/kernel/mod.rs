@@ -15,6 +15,7 @@ use crate::stats::TestKind;
 
 mod finish;
 mod histogram;
+mod sequential;
 
 use finish::orient_all;
 pub use histogram::{NullHistogram, UpperTail};
@@ -33,6 +34,8 @@ pub struct Kernel {
     inverse_group_sizes: Vec<f32>,
     /// Whether to count every relabelled statistic into a pooled histogram.
     pooled_null: bool,
+    /// Sequential stopping: a feature stops at this many exceedances.
+    stop_after: Option<u64>,
     observed: Vec<u8>,
     relabel: Relabelings,
     /// `n x B` row-major: 1.0 where relabelling b puts sample i in group B.
@@ -43,8 +46,12 @@ pub struct Kernel {
 #[derive(Debug, Clone, Copy)]
 pub struct FeatureOutcome {
     pub prepared: Prepared,
-    /// Relabelings at least as extreme as the observed labelling.
+    /// Relabelings at least as extreme as the observed labelling (with
+    /// sequential stopping: among the first `relabelings`).
     pub exceed: u64,
+    /// Relabelings this feature was compared with: all of them, or fewer
+    /// when sequential stopping ended it early.
+    pub relabelings: u64,
 }
 
 /// What a chunk contributes beyond its features: the largest kernel
@@ -95,6 +102,7 @@ impl Kernel {
             inverse_group_sizes: spec.group_sizes.iter().map(|&g| 1.0 / g as f32).collect(),
             spec,
             pooled_null: false,
+            stop_after: None,
             observed,
             relabel,
             weights,
@@ -103,6 +111,12 @@ impl Kernel {
 
     pub fn with_pooled_null(mut self, pooled_null: bool) -> Self {
         self.pooled_null = pooled_null;
+        self
+    }
+
+    /// Sequential stopping at `h` exceedances (see `sequential.rs`).
+    pub fn with_stop_after(mut self, h: Option<u64>) -> Self {
+        self.stop_after = h;
         self
     }
 
@@ -151,6 +165,7 @@ impl Kernel {
             features.push(FeatureOutcome {
                 prepared,
                 exceed: 0,
+                relabelings: 0,
             });
         }
         // Tested rows packed together, in order.
@@ -176,6 +191,21 @@ impl Kernel {
             .iter()
             .map(|&r| features[r].prepared.kernel_obs)
             .collect();
+        if let Some(h) = self.stop_after {
+            let (exceed, used) = self.count_sequential(&standardized, &obs, h, s);
+            for (k, &r) in s.tested.iter().enumerate() {
+                features[r].exceed = exceed[k];
+                features[r].relabelings = used[k];
+            }
+            // Per-relabelling maxima would miss the stopped features: none
+            // are kept (maxT is not offered with sequential stopping).
+            return ChunkOutcome {
+                features,
+                null_max: s.maxima.clone(),
+                standardized,
+                null_hist: Vec::new(),
+            };
+        }
         let rows_view = self.load_rows(&standardized, &obs, &mut s.rows);
         let (floors, null_max) = (&mut s.floors, &mut s.maxima);
         let mut exceed = vec![0u64; t];
@@ -200,6 +230,7 @@ impl Kernel {
         });
         for (k, &r) in s.tested.iter().enumerate() {
             features[r].exceed = exceed[k];
+            features[r].relabelings = b_total as u64;
         }
         ChunkOutcome {
             features,
