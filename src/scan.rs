@@ -1031,6 +1031,8 @@ pub(crate) struct Finalized {
     pub(crate) results_path: PathBuf,
     /// Sum of n_relabel over tested features.
     pub(crate) relabelings_used: u64,
+    /// Features that sequential stopping ended before B.
+    pub(crate) stopped_early: u64,
 }
 
 pub(crate) fn hits(summary: &AdjustSummary, method: Method) -> [u64; 3] {
@@ -1154,6 +1156,7 @@ pub(crate) fn finalize(
         .maxt_computed()
         .map(|_| crate::maxt::SingleStep::new(null_max));
     let mut relabelings_used = 0u64;
+    let mut stopped_early = 0u64;
     let mut reader = SpillReader::open_unchecked(spill_dir)?;
     let mut id = String::new();
     let mut param_row = vec![f64::NAN; METHODS.len()];
@@ -1180,6 +1183,7 @@ pub(crate) fn finalize(
             };
             if tested {
                 relabelings_used += record.n_relabel;
+                stopped_early += u64::from(record.source == spill::PSource::Sequential);
             }
             let fwer = if record.p_maxt.is_nan() {
                 p_maxt_single
@@ -1229,6 +1233,7 @@ pub(crate) fn finalize(
         fwer_hits_05,
         results_path,
         relabelings_used,
+        stopped_early,
     })
 }
 
@@ -1290,6 +1295,7 @@ pub(crate) fn write_run_record(
                         "drawn": if summary.exact { "every distinct relabelling listed once" }
                                  else { "independent uniform draws, with replacement" },
                         "used": summary.relabelings_used,
+                        "stopped_early": finalized.stopped_early,
                         "fixed_b_equivalent": summary.tested * summary.relabelings as u64,
                         "p_perm_rule": p_perm_rule(options, summary.exact)},
         "features": {"total": summary.features, "tested": summary.tested,
