@@ -105,12 +105,8 @@ pub fn run_merge(options: &MergeOptions, stop: &AtomicBool) -> Result<ScanSummar
     }
     let stepdown_started = Instant::now();
     if scan_options.maxt_computed() == Some(MaxtMode::StepDown) {
-        let mut p_rule = crate::perm_p::PermPRule::for_scan(
-            &scan_options,
-            &first.design,
-            b_total,
-            first.exact,
-        );
+        let mut p_rule =
+            crate::perm_p::PermPRule::for_scan(&scan_options, &first.design, b_total, first.exact);
         merge_step_down(
             &shards,
             &spill_dir,

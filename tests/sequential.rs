@@ -155,7 +155,12 @@ fn sequential_run_uses_a_tenth_of_the_relabelings_and_agrees_with_fixed_b() {
     let want = plain_bh(&p_seq);
     let got = seq.f64s("q_bh");
     for f in 0..rows.len() {
-        assert!(close(got[f], want[f], 1e-12), "feature {f}: q_bh {} vs {}", got[f], want[f]);
+        assert!(
+            close(got[f], want[f], 1e-12),
+            "feature {f}: q_bh {} vs {}",
+            got[f],
+            want[f]
+        );
     }
     // maxT needs every relabelling of every feature: not computed.
     assert!(seq.f64s("p_maxt_single").iter().all(|v| v.is_nan()));
@@ -342,7 +347,10 @@ fn phipson_smyth_matches_the_papers_formula() {
     ] {
         let want = phipson_smyth_by_sum(b, big_b, m_t);
         let got = riffle::tail::phipson_smyth_exact(b, big_b, m_t as u128);
-        assert!(close(got, want, 1e-10), "b {b}, B {big_b}, m_t {m_t}: {got} vs {want}");
+        assert!(
+            close(got, want, 1e-10),
+            "b {b}, B {big_b}, m_t {m_t}: {got} vs {want}"
+        );
         // Never below the smallest possible true p, never above the
         // usual (b + 1) / (B + 1).
         assert!(got <= (b + 1) as f64 / (big_b + 1) as f64 + 1e-15);
@@ -351,7 +359,10 @@ fn phipson_smyth_matches_the_papers_formula() {
     for &(b, big_b) in &[(0u64, 1000u64), (7, 999), (250, 10_000)] {
         let p = riffle::tail::phipson_smyth_exact(b, big_b, 1u128 << 80);
         let usual = (b + 1) as f64 / (big_b + 1) as f64;
-        assert!((p - usual).abs() <= 1e-15, "b {b}, B {big_b}: {p} vs {usual}");
+        assert!(
+            (p - usual).abs() <= 1e-15,
+            "b {b}, B {big_b}: {p} vs {usual}"
+        );
     }
 }
 
@@ -425,7 +436,12 @@ fn bh_on_non_grid_p_values_external_sort() {
     assert!(summary.used_external_sort);
     let want = plain_bh(&p);
     for i in 0..p.len() {
-        assert!(close(got[i], want[i], 1e-12), "{i}: {} vs {}", got[i], want[i]);
+        assert!(
+            close(got[i], want[i], 1e-12),
+            "{i}: {} vs {}",
+            got[i],
+            want[i]
+        );
     }
 }
 
@@ -446,14 +462,10 @@ fn sequential_refuses_what_needs_every_relabelling() {
             values.clone(),
         )
         .unwrap();
-        let err = riffle::scan::run_scan_on(
-            Box::new(source),
-            &(&d).into(),
-            &o,
-            &AtomicBool::new(false),
-        )
-        .unwrap_err()
-        .to_string();
+        let err =
+            riffle::scan::run_scan_on(Box::new(source), &(&d).into(), &o, &AtomicBool::new(false))
+                .unwrap_err()
+                .to_string();
         assert!(err.contains(expect), "{err}");
         assert!(!dir.path().join("results.tsv").exists());
     }

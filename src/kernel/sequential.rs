@@ -117,8 +117,10 @@ impl Kernel {
     ) -> usize {
         let mut seen = 0u64;
         for (j, &v) in tile.iter().enumerate() {
+            // NaN is neither above nor below: decided in f64, as in count_row.
+            let near = !(v > row.above || v < row.below);
             let hit = v > row.above
-                || (!(v < row.below)
+                || (near
                     && self.spec.kernel_stat_with(
                         z,
                         super::assignment(&self.spec, &self.relabel, col0 + j),
