@@ -77,10 +77,11 @@ impl PermPRule {
     }
 }
 
-/// m_t of Phipson & Smyth: the distinct relabelings, halved where every
-/// relabelling has a mirror image giving the same two-sided statistic (two
-/// equal groups swapped; all signs flipped), as the paper does for the
-/// balanced two-sided two-group test (sec. 4, from memory).
+/// m_t of Phipson & Smyth: the number of distinct values the statistic can
+/// take, i.e. the distinct relabelings, halved for a two-sided test with
+/// two equal groups (swapping the groups gives the same statistic), as the
+/// paper prescribes. The same mirror argument halves it for two-sided sign
+/// flips (flipping every sign); that case is our extension of the rule.
 pub fn distinct_statistics(options: &crate::scan::ScanOptions, design: &StudyDesign) -> u128 {
     use crate::stats::{DesignKind, Side};
     let classes = design.trait_classes();

@@ -6,7 +6,7 @@
 
 mod common;
 
-use std::path::Path;
+use std::path::{Path, PathBuf};
 use std::sync::atomic::AtomicBool;
 
 use common::{options, scan_rows, Table, TestRng};
@@ -222,28 +222,7 @@ fn sequential_results_do_not_depend_on_threads_chunks_or_shards() {
 
     let (rows, labels) = study(3001, 9, 7, 20, 1.5, 12);
     let dir = tempfile::tempdir().unwrap();
-    // A file-backed study, so that shards can read it.
-    let samples: Vec<String> = (0..labels.len()).map(|i| format!("s{i}")).collect();
-    let matrix = dir.path().join("m.arrow");
-    let mut w = riffle::input::create_matrix_writer(
-        &matrix,
-        riffle::input::MatrixFormat::ArrowIpc,
-        "feature",
-        &samples,
-        riffle::input::ValueType::F64,
-        500,
-    )
-    .unwrap();
-    let ids: Vec<String> = (0..rows.len()).map(|i| format!("f{i:05}")).collect();
-    let values: Vec<f64> = rows.iter().flatten().copied().collect();
-    w.write_block(&ids, &values).unwrap();
-    w.finish().unwrap();
-    let sheet = dir.path().join("sheet.tsv");
-    let mut text = String::from("sample\tcond\n");
-    for (s, &l) in samples.iter().zip(&labels) {
-        text.push_str(&format!("{s}\t{}\n", if l == 1 { "b" } else { "a" }));
-    }
-    std::fs::write(&sheet, text).unwrap();
+    let (matrix, sheet) = write_study(dir.path(), &rows, &labels);
 
     for (test, format) in [
         (TestKind::Welch, TableFormat::Tsv),
@@ -299,6 +278,100 @@ fn sequential_results_do_not_depend_on_threads_chunks_or_shards() {
             .unwrap();
             assert!(results(&out) == outputs[0], "{test:?}: {n} shards");
         }
+    }
+}
+
+/// The study as an Arrow matrix and a sample sheet (column `cond`, levels
+/// a and b), so that shards and the binary can read it.
+fn write_study(dir: &Path, rows: &[Vec<f64>], labels: &[u8]) -> (PathBuf, PathBuf) {
+    let samples: Vec<String> = (0..labels.len()).map(|i| format!("s{i}")).collect();
+    let matrix = dir.join("m.arrow");
+    let mut w = riffle::input::create_matrix_writer(
+        &matrix,
+        riffle::input::MatrixFormat::ArrowIpc,
+        "feature",
+        &samples,
+        riffle::input::ValueType::F64,
+        500,
+    )
+    .unwrap();
+    let ids: Vec<String> = (0..rows.len()).map(|i| format!("f{i:05}")).collect();
+    let values: Vec<f64> = rows.iter().flatten().copied().collect();
+    w.write_block(&ids, &values).unwrap();
+    w.finish().unwrap();
+    let sheet = dir.join("sheet.tsv");
+    let mut text = String::from("sample\tcond\n");
+    for (s, &l) in samples.iter().zip(labels) {
+        text.push_str(&format!("{s}\t{}\n", if l == 1 { "b" } else { "a" }));
+    }
+    std::fs::write(&sheet, text).unwrap();
+    (matrix, sheet)
+}
+
+#[test]
+fn command_line_sequential_run_and_its_refusals() {
+    let (rows, labels) = study(400, 8, 8, 10, 2.0, 4);
+    let dir = tempfile::tempdir().unwrap();
+    let (matrix, sheet) = write_study(dir.path(), &rows, &labels);
+    let out = dir.path().join("out");
+    let base = [
+        "scan",
+        "--matrix",
+        matrix.to_str().unwrap(),
+        "--samples",
+        sheet.to_str().unwrap(),
+        "--group",
+        "cond",
+        "--out",
+        out.to_str().unwrap(),
+        "--perms",
+        "4000",
+        "--format",
+        "tsv",
+        "--quiet",
+        "--no-report",
+    ];
+    let run = |extra: &[&str]| {
+        let args: Vec<&str> = base.iter().chain(extra).copied().collect();
+        common::riffle(&args)
+    };
+    let done = run(&["--stop-after", "10", "--phipson-smyth"]);
+    assert!(
+        done.status.success(),
+        "{}",
+        String::from_utf8_lossy(&done.stderr)
+    );
+    let table = Table::read(&out.join("results.tsv"));
+    let sources = table.text("p_source");
+    assert!(sources.iter().any(|s| s == "sequential"));
+    assert!(sources.iter().any(|s| s == "phipson-smyth"));
+    let record: serde_json::Value =
+        serde_json::from_slice(&std::fs::read(out.join("run.json")).unwrap()).unwrap();
+    let used = record["relabelings"]["used"].as_u64().unwrap();
+    let summed: f64 = table.f64s("n_relabel").iter().sum();
+    assert_eq!(used as f64, summed);
+    assert_eq!(record["relabelings"]["fixed_b_equivalent"], 400 * 4000);
+    assert!(used < 400 * 4000 / 2);
+
+    for (extra, expect) in [
+        (
+            &["--stop-after", "0"][..],
+            "--stop-after must be at least 1",
+        ),
+        (
+            &["--stop-after", "10", "--pooled-null"][..],
+            "--pooled-null",
+        ),
+    ] {
+        let _ = std::fs::remove_dir_all(&out);
+        let failed = run(extra);
+        let stderr = String::from_utf8_lossy(&failed.stderr);
+        assert_eq!(failed.status.code(), Some(2), "{stderr}");
+        assert!(
+            stderr.contains(expect) && stderr.lines().count() == 1,
+            "{stderr}"
+        );
+        assert!(!out.join("results.tsv").exists());
     }
 }
 
