@@ -167,6 +167,7 @@ pub fn run_merge(options: &MergeOptions, stop: &AtomicBool) -> Result<ScanSummar
         feature_relabelings_per_second: finalized.relabelings_used as f64
             / stats.wall_seconds.max(1e-9),
         relabelings_used: finalized.relabelings_used,
+        maxt_computed: scan_options.maxt_computed().is_some(),
     };
     let info = MatrixInfo {
         path: scan_options.matrix.clone(),

@@ -186,6 +186,8 @@ pub struct ScanSummary {
     /// Relabelings summed over tested features: tested x B, or fewer with
     /// sequential stopping.
     pub relabelings_used: u64,
+    /// Whether maxT (p_maxt_single, FWER hits) was computed.
+    pub maxt_computed: bool,
 }
 
 /// Spill folder inside an output folder.
@@ -593,6 +595,7 @@ fn scan_into_out_dir(
         feature_relabelings_per_second: finalized.relabelings_used as f64
             / stats.wall_seconds.max(1e-9),
         relabelings_used: finalized.relabelings_used,
+        maxt_computed: options.maxt_computed().is_some(),
     };
     write_run_record(
         options,
