@@ -99,9 +99,23 @@ pub struct ScanArgs {
     pub test: TestKind,
     #[arg(long, value_enum, default_value_t = Side::Both)]
     pub side: Side,
-    /// Number of relabelings (all of them, exactly, when fewer exist).
+    /// Number of relabelings (all of them, exactly, when fewer exist;
+    /// otherwise independent random draws, i.e. with replacement).
     #[arg(long, default_value_t = 10_000)]
     pub perms: usize,
+    /// Sequential stopping (Besag & Clifford 1991): a feature stops at its
+    /// H-th relabelling at least as extreme as the observed one, with
+    /// p_perm = H / L after L relabelings (p_source "sequential",
+    /// n_relabel L); the others run all --perms. 10 is usual. No maxT then
+    /// (p_maxt, p_maxt_single empty); not with --pooled-null.
+    #[arg(long, value_name = "H")]
+    pub stop_after: Option<u64>,
+    /// Phipson & Smyth (2010) exact p_perm for relabelings drawn with
+    /// replacement, instead of (b+1)/(B+1): it matters when the distinct
+    /// relabelings are few enough to repeat (p_source "phipson-smyth").
+    /// Ignored when every relabelling is listed (p_source "exact").
+    #[arg(long)]
+    pub phipson_smyth: bool,
     #[arg(long, default_value_t = 1)]
     pub seed: u64,
     /// Output folder (created if needed).
@@ -265,6 +279,8 @@ impl ScanArgs {
             skip_if_unchanged: self.skip_if_unchanged,
             checkpoint_seconds: self.checkpoint_seconds,
             tail_fit: self.tail_fit,
+            stop_after: self.stop_after,
+            phipson_smyth: self.phipson_smyth,
         }
     }
 }

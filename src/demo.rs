@@ -52,14 +52,23 @@ pub fn summary_text(s: &ScanSummary) -> String {
         s.n_a,
         s.relabelings,
         if s.exact {
-            " (all of them: exact p-values)"
+            " (all of them: exact p-values)".to_string()
+        } else if s.relabelings_used < s.tested * s.relabelings as u64 {
+            format!(
+                " ({:.2}% of them used: sequential stopping)",
+                100.0 * s.relabelings_used as f64 / (s.tested * s.relabelings as u64) as f64
+            )
         } else {
-            ""
+            String::new()
         },
         s.bh_hits[0],
         s.bh_hits[1],
         s.bh_hits[2],
-        s.fwer_hits_05,
+        if s.maxt_computed {
+            s.fwer_hits_05.to_string()
+        } else {
+            "not computed (sequential stopping)".to_string()
+        },
         s.pi0,
         s.seconds,
         s.feature_relabelings_per_second,

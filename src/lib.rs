@@ -22,6 +22,7 @@ pub mod maxt;
 pub mod merge;
 pub mod multitest;
 pub mod output;
+pub mod perm_p;
 pub mod pipeline;
 pub mod progress;
 pub mod provenance;

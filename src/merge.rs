@@ -104,13 +104,16 @@ pub fn run_merge(options: &MergeOptions, stop: &AtomicBool) -> Result<ScanSummar
         }
     }
     let stepdown_started = Instant::now();
-    if scan_options.maxt == MaxtMode::StepDown {
+    if scan_options.maxt_computed() == Some(MaxtMode::StepDown) {
+        let mut p_rule =
+            crate::perm_p::PermPRule::for_scan(&scan_options, &first.design, b_total, first.exact);
         merge_step_down(
             &shards,
             &spill_dir,
             b_total,
             n_features,
             options.memory_bytes,
+            &mut p_rule,
         )?;
     }
     let stepdown_seconds = stepdown_started.elapsed().as_secs_f64();
@@ -161,8 +164,10 @@ pub fn run_merge(options: &MergeOptions, stop: &AtomicBool) -> Result<ScanSummar
         fwer_hits_05: finalized.fwer_hits_05,
         results_path: finalized.results_path.clone(),
         seconds: started.elapsed().as_secs_f64(),
-        feature_relabelings_per_second: tested as f64 * b_total as f64
+        feature_relabelings_per_second: finalized.relabelings_used as f64
             / stats.wall_seconds.max(1e-9),
+        relabelings_used: finalized.relabelings_used,
+        maxt_computed: scan_options.maxt_computed().is_some(),
     };
     let info = MatrixInfo {
         path: scan_options.matrix.clone(),
@@ -323,6 +328,7 @@ fn merge_step_down(
     b_total: usize,
     n_features: u64,
     memory_bytes: u64,
+    p_rule: &mut crate::perm_p::PermPRule,
 ) -> Result<()> {
     let keys_path = spill_dir.join("merged-keys.bin");
     let key_files: Vec<PathBuf> = shards
@@ -411,7 +417,14 @@ fn merge_step_down(
     drop(out);
     drop(map);
     let _ = std::fs::remove_file(&keys_path);
-    scan::apply_step_down(&rank_file, spill_dir, b_total, n_features, memory_bytes)
+    scan::apply_step_down(
+        &rank_file,
+        spill_dir,
+        b_total,
+        n_features,
+        memory_bytes,
+        p_rule,
+    )
 }
 
 /// First position in `lo..hi` where `holds` is false (it must hold on a

@@ -16,7 +16,7 @@ use crate::output::{create_table, Cell, ColumnKind, TableFormat};
 use crate::pipeline::{self, ChunkSink, FinishedChunk, PipelineOptions, PipelineStats};
 use crate::progress::ProgressReporter;
 use crate::resume::{Checkpoint, Phase};
-use crate::spill::{self, PSource, Record, SpillReader, SpillWriter};
+use crate::spill::{self, Record, SpillReader, SpillWriter};
 use crate::stats::prepare::{Status, TestSpec};
 use crate::stats::{DesignKind, Side, Sizes, TestKind};
 use crate::stepdown::{rank_pass, reverse_and_scatter, RowSorter};
@@ -86,6 +86,15 @@ pub struct ScanOptions {
     /// (`crate::tail`); off when absent.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub tail_fit: Option<u64>,
+    /// Sequential stopping (Besag & Clifford 1991): a feature stops at this
+    /// many exceedances with p = h / L. Leaves maxT out (it needs every
+    /// relabelling of every feature).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub stop_after: Option<u64>,
+    /// Phipson & Smyth (2010) exact p for relabelings drawn with
+    /// replacement, instead of (b + 1) / (B + 1).
+    #[serde(default, skip_serializing_if = "std::ops::Not::not")]
+    pub phipson_smyth: bool,
 }
 
 fn default_checkpoint_seconds() -> f64 {
@@ -152,7 +161,15 @@ impl ScanOptions {
             skip_if_unchanged: false,
             checkpoint_seconds: default_checkpoint_seconds(),
             tail_fit: None,
+            stop_after: None,
+            phipson_smyth: false,
         }
+    }
+
+    /// The maxT mode actually run: none with sequential stopping, whose
+    /// stopped features leave the per-relabelling maxima incomplete.
+    pub fn maxt_computed(&self) -> Option<MaxtMode> {
+        self.stop_after.is_none().then_some(self.maxt)
     }
 }
 
@@ -181,6 +198,11 @@ pub struct ScanSummary {
     pub results_path: PathBuf,
     pub seconds: f64,
     pub feature_relabelings_per_second: f64,
+    /// Relabelings summed over tested features: tested x B, or fewer with
+    /// sequential stopping.
+    pub relabelings_used: u64,
+    /// Whether maxT (p_maxt_single, FWER hits) was computed.
+    pub maxt_computed: bool,
 }
 
 /// Spill folder inside an output folder.
@@ -350,9 +372,11 @@ fn scan_into_out_dir(
         Relabelings::generate(&design.scheme(&trait_classes), options.perms, options.seed);
     let b_total = relabel.count;
     let exact = relabel.exact;
+    let p_rule = crate::perm_p::PermPRule::for_scan(options, design, b_total, exact);
     let kernel = Arc::new(
         Kernel::new(spec.clone(), design.classes.clone(), relabel)
-            .with_pooled_null(options.pooled_null),
+            .with_pooled_null(options.pooled_null)
+            .with_stop_after(p_rule.stop_after()),
     );
 
     prepare_out_dir(&options.out)?;
@@ -361,7 +385,7 @@ fn scan_into_out_dir(
     let spill_dir = options.out.join(SPILL_DIR);
     let runs_dir = spill_dir.join("rank-runs");
     let sorter_memory = options.memory_bytes / 4;
-    let step_down = options.maxt == MaxtMode::StepDown;
+    let step_down = options.maxt_computed() == Some(MaxtMode::StepDown);
     let mut pipeline_options = pipeline_options(options, design.samples.len(), b_total);
     pipeline_options.prepare_only = step_down;
 
@@ -420,11 +444,7 @@ fn scan_into_out_dir(
         let mut sink = SpillSink {
             writer,
             null_max: checkpoint.null_max(),
-            source: if exact {
-                PSource::Exact
-            } else {
-                PSource::Counted
-            },
+            p_rule: p_rule.clone(),
             b_total,
             sizes: spec.sizes,
             tested: checkpoint.tested,
@@ -554,6 +574,7 @@ fn scan_into_out_dir(
                 b_total,
                 stats.features,
                 options.memory_bytes,
+                &mut p_rule.clone(),
             )?;
         }
         stats.wall_seconds += rank_started.elapsed().as_secs_f64();
@@ -602,8 +623,10 @@ fn scan_into_out_dir(
         fwer_hits_05: finalized.fwer_hits_05,
         results_path: finalized.results_path.clone(),
         seconds,
-        feature_relabelings_per_second: tested as f64 * b_total as f64
+        feature_relabelings_per_second: finalized.relabelings_used as f64
             / stats.wall_seconds.max(1e-9),
+        relabelings_used: finalized.relabelings_used,
+        maxt_computed: options.maxt_computed().is_some(),
     };
     write_run_record(
         options,
@@ -833,6 +856,17 @@ fn validate(options: &ScanOptions) -> Result<()> {
             "--tail-fit cannot be combined with --shard yet: run the tail fit on a whole scan",
         ));
     }
+    if options.stop_after == Some(0) {
+        return Err(RiffleError::options(
+            "--stop-after must be at least 1 (10 is usual: Besag & Clifford 1991)",
+        ));
+    }
+    if options.stop_after.is_some() && options.pooled_null {
+        return Err(RiffleError::options(
+            "--stop-after does not go with --pooled-null: the pooled null needs every \
+             relabelling of every feature; leave one of them out",
+        ));
+    }
     if options.memory_bytes < 16 << 20 {
         return Err(RiffleError::options("--memory must be at least 16M"));
     }
@@ -872,7 +906,7 @@ struct SpillSink {
     sorter: Option<RowSorter>,
     n: usize,
     null_max: Vec<f64>,
-    source: PSource,
+    p_rule: crate::perm_p::PermPRule,
     b_total: usize,
     sizes: Sizes,
     tested: u64,
@@ -915,7 +949,6 @@ impl ChunkSink for SpillSink {
         if let Some(hist) = self.null_hist.as_mut() {
             hist.add(&chunk.outcome.null_hist);
         }
-        let denominator = (self.b_total + 1) as f64;
         let mut tested_rows = chunk.outcome.standardized.chunks_exact(self.n.max(1));
         for (k, (id, f)) in chunk.ids.iter().zip(&chunk.outcome.features).enumerate() {
             let p = f.prepared;
@@ -934,23 +967,30 @@ impl ChunkSink for SpillSink {
                     .entry(p.status.reason().to_string())
                     .or_default() += 1;
             }
+            // In step-down mode the counts come from the rank pass; until
+            // then p_perm is unknown but the rule already names its source.
+            let (p_perm, source) = if tested && self.sorter.is_none() {
+                self.p_rule.p(f.exceed, f.relabelings)
+            } else {
+                (f64::NAN, self.p_rule.p(0, self.b_total as u64).1)
+            };
             let record = Record {
                 effect: p.effect,
                 statistic: p.statistic,
                 p_param: p.p_param,
-                p_perm: if tested && self.sorter.is_none() {
-                    (f.exceed + 1) as f64 / denominator
-                } else {
-                    f64::NAN
-                },
+                p_perm,
                 kernel_obs: p.kernel_obs,
                 p_maxt: f64::NAN,
                 exceed: f.exceed,
-                n_relabel: if tested { self.b_total as u64 } else { 0 },
+                n_relabel: match (tested, self.sorter.is_some()) {
+                    (false, _) => 0,
+                    (true, true) => self.b_total as u64,
+                    (true, false) => f.relabelings,
+                },
                 n_a: p.observed.map_or(self.sizes.n_a, |o| o.n_a) as u32,
                 n_b: p.observed.map_or(self.sizes.n_b, |o| o.n_b) as u32,
                 status: p.status,
-                source: self.source,
+                source,
             };
             self.writer.push(id, &record)?;
         }
@@ -972,6 +1012,7 @@ pub(crate) fn apply_step_down(
     b_total: usize,
     features: u64,
     memory_bytes: u64,
+    p_rule: &mut crate::perm_p::PermPRule,
 ) -> Result<()> {
     let dense = spill_dir.join("stepdown.bin");
     let mut writer = crate::columns::ColumnFileWriter::create(&dense, 2)?;
@@ -990,12 +1031,11 @@ pub(crate) fn apply_step_down(
     writer.finish()?;
     let mut reader = crate::columns::ColumnFileReader::open(&dense, 2)?;
     let mut row = [0.0f64; 2];
-    let denominator = (b_total + 1) as f64;
     spill::rewrite_records(spill_dir, &mut |_, record| {
         reader.next_row(&mut row)?;
         if record.status == Status::Tested {
             record.exceed = row[0] as u64;
-            record.p_perm = (record.exceed + 1) as f64 / denominator;
+            (record.p_perm, record.source) = p_rule.p(record.exceed, b_total as u64);
             record.p_maxt = row[1];
         }
         Ok(())
@@ -1048,6 +1088,10 @@ pub(crate) struct Finalized {
     pub(crate) results_path: PathBuf,
     /// What the tail pass did (scans with `tail_fit`).
     pub(crate) tail: Option<crate::tail::TailPassCounts>,
+    /// Sum of n_relabel over tested features.
+    pub(crate) relabelings_used: u64,
+    /// Features that sequential stopping ended before B.
+    pub(crate) stopped_early: u64,
 }
 
 pub(crate) fn hits(summary: &AdjustSummary, method: Method) -> [u64; 3] {
@@ -1167,7 +1211,11 @@ pub(crate) fn finalize(
 
     let results_path = options.out.join(options.format.file_name(RESULTS_STEM));
     let mut table = create_table(&results_path, options.format, &columns)?;
-    let maxt = crate::maxt::SingleStep::new(null_max);
+    let maxt = options
+        .maxt_computed()
+        .map(|_| crate::maxt::SingleStep::new(null_max));
+    let mut relabelings_used = 0u64;
+    let mut stopped_early = 0u64;
     let mut reader = SpillReader::open_unchecked(spill_dir)?;
     let mut id = String::new();
     let mut param_row = vec![f64::NAN; METHODS.len()];
@@ -1188,11 +1236,14 @@ pub(crate) fn finalize(
                 cols.next_row(&mut param_row)?;
             }
             let tested = record.status == Status::Tested;
-            let p_maxt_single = if tested {
-                maxt.adjusted(record.kernel_obs)
-            } else {
-                f64::NAN
+            let p_maxt_single = match &maxt {
+                Some(maxt) if tested => maxt.adjusted(record.kernel_obs),
+                _ => f64::NAN,
             };
+            if tested {
+                relabelings_used += record.n_relabel;
+                stopped_early += u64::from(record.source == spill::PSource::Sequential);
+            }
             let fwer = if record.p_maxt.is_nan() {
                 p_maxt_single
             } else {
@@ -1241,6 +1292,26 @@ pub(crate) fn finalize(
         fwer_hits_05,
         results_path,
         tail: None,
+        relabelings_used,
+        stopped_early,
+    })
+}
+
+/// How p_perm was computed, for `run.json`.
+fn p_perm_rule(options: &ScanOptions, exact: bool) -> serde_json::Value {
+    if exact {
+        return serde_json::json!({"rule": "exact: (b + 1) / (B + 1) over the listed space",
+                                  "maxt": options.maxt_computed()});
+    }
+    serde_json::json!({
+        "stop_after": options.stop_after,
+        "rule": match (options.stop_after, options.phipson_smyth) {
+            (Some(_), true) => "h / L when stopped (Besag-Clifford), else Phipson-Smyth exact",
+            (Some(_), false) => "h / L when stopped (Besag-Clifford), else (b + 1) / (B + 1)",
+            (None, true) => "Phipson-Smyth exact",
+            (None, false) => "(b + 1) / (B + 1)",
+        },
+        "maxt": options.maxt_computed(),
     })
 }
 
@@ -1280,7 +1351,13 @@ pub(crate) fn write_run_record(
         },
         "design": design,
         "relabelings": {"count": summary.relabelings, "exact": summary.exact,
-                        "generator": crate::design::relabel::GENERATOR, "seed": options.seed},
+                        "generator": crate::design::relabel::GENERATOR, "seed": options.seed,
+                        "drawn": if summary.exact { "every distinct relabelling listed once" }
+                                 else { "independent uniform draws, with replacement" },
+                        "used": summary.relabelings_used,
+                        "stopped_early": finalized.stopped_early,
+                        "fixed_b_equivalent": summary.tested * summary.relabelings as u64,
+                        "p_perm_rule": p_perm_rule(options, summary.exact)},
         "features": {"total": summary.features, "tested": summary.tested,
                      "untested": summary.untested.iter().cloned().collect::<std::collections::BTreeMap<_, _>>()},
         "multiple_testing": {

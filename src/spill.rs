@@ -35,9 +35,15 @@ pub enum PSource {
     Counted = 0,
     /// Every distinct relabelling enumerated.
     Exact = 1,
+    /// h / L: sequential stopping at the h-th exceedance after L
+    /// relabelings (Besag & Clifford 1991).
+    Sequential = 2,
     /// Extrapolated from a generalized Pareto fit to the feature's largest
     /// relabelled statistics (`crate::tail`); `exceed` keeps the count.
     Tail = 3,
+    /// Phipson & Smyth (2010) exact p for B draws with replacement from a
+    /// space of m_t distinct relabelings.
+    PhipsonSmyth = 4,
 }
 
 impl PSource {
@@ -45,6 +51,8 @@ impl PSource {
         match self {
             PSource::Counted => "counted",
             PSource::Exact => "exact",
+            PSource::Sequential => "sequential",
+            PSource::PhipsonSmyth => "phipson-smyth",
             PSource::Tail => "tail",
         }
     }
@@ -52,7 +60,9 @@ impl PSource {
         match code {
             0 => Some(PSource::Counted),
             1 => Some(PSource::Exact),
+            2 => Some(PSource::Sequential),
             3 => Some(PSource::Tail),
+            4 => Some(PSource::PhipsonSmyth),
             _ => None,
         }
     }

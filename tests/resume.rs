@@ -113,3 +113,11 @@ fn killed_step_down_scan_resumes_to_identical_bytes() {
 fn killed_single_step_scan_resumes_to_identical_bytes() {
     kill_and_resume(&["--maxt", "single"], 2);
 }
+
+#[test]
+fn killed_sequential_scan_resumes_to_identical_bytes() {
+    kill_and_resume(
+        &["--stop-after", "10", "--perms", "20000", "--phipson-smyth"],
+        3,
+    );
+}

@@ -80,19 +80,38 @@ impl Relabelings {
         )
     }
 
-    /// All distinct relabelings when they number at most `requested`
-    /// (listed in a fixed order), else `requested` seeded draws.
-    pub fn generate(scheme: &Scheme<'_>, requested: usize, seed: u64) -> Self {
+    /// Number of distinct relabelings the scheme allows, the observed one
+    /// included (saturating at u128::MAX).
+    pub fn space_size(scheme: &Scheme<'_>) -> u128 {
         match scheme {
-            Scheme::Permute { classes, strata } => {
-                let blocks = strata_blocks(classes.len(), *strata);
-                let distinct = blocks.iter().fold(1u128, |acc, block| {
+            Scheme::Permute { classes, strata } => strata_blocks(classes.len(), *strata)
+                .iter()
+                .fold(1u128, |acc, block| {
                     let mut per_class = [0usize; 256];
                     for &u in block {
                         per_class[classes[u] as usize] += 1;
                     }
                     acc.saturating_mul(multinomial_count(block.len(), &per_class))
-                });
+                }),
+            Scheme::SignFlip { n } => {
+                if *n < 128 {
+                    1u128 << n
+                } else {
+                    u128::MAX
+                }
+            }
+        }
+    }
+
+    /// All distinct relabelings when they number at most `requested`
+    /// (listed in a fixed order), else `requested` seeded draws — each an
+    /// independent uniform draw, so the same relabelling (the observed one
+    /// too) may come up more than once: sampling WITH replacement.
+    pub fn generate(scheme: &Scheme<'_>, requested: usize, seed: u64) -> Self {
+        match scheme {
+            Scheme::Permute { classes, strata } => {
+                let blocks = strata_blocks(classes.len(), *strata);
+                let distinct = Self::space_size(scheme);
                 if distinct <= requested as u128 {
                     enumerate_arrangements(classes, &blocks)
                 } else {

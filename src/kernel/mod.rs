@@ -16,6 +16,7 @@ use crate::stats::TestKind;
 mod finish;
 mod histogram;
 mod masked;
+mod sequential;
 
 use finish::orient_all;
 pub use histogram::{NullHistogram, UpperTail};
@@ -34,6 +35,8 @@ pub struct Kernel {
     inverse_group_sizes: Vec<f32>,
     /// Whether to count every relabelled statistic into a pooled histogram.
     pooled_null: bool,
+    /// Sequential stopping: a feature stops at this many exceedances.
+    stop_after: Option<u64>,
     observed: Vec<u8>,
     relabel: Relabelings,
     /// `n x B` row-major: 1.0 where relabelling b puts sample i in group B.
@@ -44,8 +47,12 @@ pub struct Kernel {
 #[derive(Debug, Clone, Copy)]
 pub struct FeatureOutcome {
     pub prepared: Prepared,
-    /// Relabelings at least as extreme as the observed labelling.
+    /// Relabelings at least as extreme as the observed labelling (with
+    /// sequential stopping: among the first `relabelings`).
     pub exceed: u64,
+    /// Relabelings this feature was compared with: all of them, or fewer
+    /// when sequential stopping ended it early.
+    pub relabelings: u64,
 }
 
 /// What a chunk contributes beyond its features: the largest kernel
@@ -96,6 +103,7 @@ impl Kernel {
             inverse_group_sizes: spec.group_sizes.iter().map(|&g| 1.0 / g as f32).collect(),
             spec,
             pooled_null: false,
+            stop_after: None,
             observed,
             relabel,
             weights,
@@ -104,6 +112,12 @@ impl Kernel {
 
     pub fn with_pooled_null(mut self, pooled_null: bool) -> Self {
         self.pooled_null = pooled_null;
+        self
+    }
+
+    /// Sequential stopping at `h` exceedances (see `sequential.rs`).
+    pub fn with_stop_after(mut self, h: Option<u64>) -> Self {
+        self.stop_after = h;
         self
     }
 
@@ -119,14 +133,23 @@ impl Kernel {
         &self.spec
     }
 
+    /// The exact (f64) kernel statistic of a standardized row under
+    /// relabelling `b`; `masked` when the row has missing values (NaN).
+    fn exact_stat(&self, z: &[f64], b: usize, masked: bool) -> f64 {
+        let relabelling = assignment(&self.spec, &self.relabel, b);
+        if masked {
+            self.spec.masked_kernel_stat_with(z, relabelling)
+        } else {
+            self.spec.kernel_stat_with(z, relabelling)
+        }
+    }
+
     /// Every relabelled kernel statistic of one standardized row, in f64:
     /// for the few features whose null tail is fitted (`crate::tail`).
     pub fn relabelled_stats(&self, z: &[f64], out: &mut Vec<f64>) {
+        let masked = z.iter().any(|v| v.is_nan());
         out.clear();
-        out.extend((0..self.relabel.count).map(|b| {
-            self.spec
-                .kernel_stat_with(z, assignment(&self.spec, &self.relabel, b))
-        }));
+        out.extend((0..self.relabel.count).map(|b| self.exact_stat(z, b, masked)));
     }
 
     /// Units per feature (samples, or pairs).
@@ -162,6 +185,7 @@ impl Kernel {
             features.push(FeatureOutcome {
                 prepared,
                 exceed: 0,
+                relabelings: 0,
             });
         }
         // Tested rows packed together, in order.
@@ -187,6 +211,21 @@ impl Kernel {
             .iter()
             .map(|&r| features[r].prepared.kernel_obs)
             .collect();
+        if let Some(h) = self.stop_after {
+            let (exceed, used) = self.count_sequential(&standardized, &obs, h, s);
+            for (k, &r) in s.tested.iter().enumerate() {
+                features[r].exceed = exceed[k];
+                features[r].relabelings = used[k];
+            }
+            // Per-relabelling maxima would miss the stopped features: none
+            // are kept (maxT is not offered with sequential stopping).
+            return ChunkOutcome {
+                features,
+                null_max: s.maxima.clone(),
+                standardized,
+                null_hist: Vec::new(),
+            };
+        }
         let rows_view = self.load_rows(&standardized, &obs, &mut s.rows);
         let (floors, null_max) = (&mut s.floors, &mut s.maxima);
         let mut exceed = vec![0u64; t];
@@ -211,6 +250,7 @@ impl Kernel {
         });
         for (k, &r) in s.tested.iter().enumerate() {
             features[r].exceed = exceed[k];
+            features[r].relabelings = b_total as u64;
         }
         ChunkOutcome {
             features,
@@ -517,14 +557,7 @@ impl Kernel {
             }
             return count;
         }
-        let exact_at = |j: usize| {
-            let relabelling = assignment(&self.spec, &self.relabel, col0 + j);
-            if row.slack > 0.0 {
-                self.spec.masked_kernel_stat_with(z, relabelling)
-            } else {
-                self.spec.kernel_stat_with(z, relabelling)
-            }
-        };
+        let exact_at = |j: usize| self.exact_stat(z, col0 + j, row.slack > 0.0);
         if near {
             for (j, &v) in tile.iter().enumerate() {
                 if !(v > row.above || v < row.below) {
