@@ -9,7 +9,8 @@
 # relabelings; the stopped ones cost nothing more).
 # Usage: bash benches/sequential.sh [SCRATCH_DIR]
 # Environment: FEATURES (1000000), SAMPLES (48), FIXED_B (20000), SEQ_B
-# ("20000 1000000"), H (10), TEST (student), THREADS (2), RIFFLE (binary).
+# ("20000 1000000"), H (10), TAIL_B (10000: B of the sequential + tail
+# run), TEST (student), THREADS (2), RIFFLE (binary).
 set -euo pipefail
 cd "$(dirname "$0")/.."
 scratch=${1:-$(mktemp -d)}
@@ -18,6 +19,7 @@ samples=${SAMPLES:-48}
 fixed_b=${FIXED_B:-20000}
 seq_b=${SEQ_B:-20000 1000000}
 h=${H:-10}
+tail_b=${TAIL_B:-10000}
 test=${TEST:-student}
 threads=${THREADS:-2}
 half=$((samples / 2))
@@ -52,11 +54,19 @@ else:
     open_at_end = tested - r["stopped_early"]
     # A run to 1e8 adds the remaining relabelings of the features still open
     # (an upper bound: some of them would stop on the way).
-    more = used + open_at_end * (target - perms)
-    line += (f"; stopped early {r['stopped_early']}, open at B {open_at_end}; EXTRAPOLATED to "
-             f"B = 1e8: {more:.3g} relabelings, {secs * more / used:.3g} s at this run's own rate")
-    if os.path.exists(rate_file):
-        line += f", {more * float(open(rate_file).read()):.3g} s at the fixed run's rate"
+    tail = record.get("tail_fit")
+    if tail:
+        counts = tail["counts"]
+        # The features still open at B got a tail p instead: nothing left
+        # to run, so this wall time is the whole cost.
+        line += (f"; stopped early {r['stopped_early']}, open at B {open_at_end}, of which "
+                 f"{counts['extrapolated']} got a tail p (measured, no extrapolation in B)")
+    else:
+        more = used + open_at_end * (target - perms)
+        line += (f"; stopped early {r['stopped_early']}, open at B {open_at_end}; EXTRAPOLATED to "
+                 f"B = 1e8: {more:.3g} relabelings, {secs * more / used:.3g} s at this run's own rate")
+        if os.path.exists(rate_file):
+            line += f", {more * float(open(rate_file).read()):.3g} s at the fixed run's rate"
 print(line)
 EOF
 }
@@ -67,6 +77,6 @@ run "fixed B" "$fixed_b"
 for b in $seq_b; do
   run "sequential h = $h" "$b" --stop-after "$h"
 done
-# PLACEHOLDER for the lead: once the tail option is on main, add the run
-#   run "sequential h = $h + tail" "<B>" --stop-after "$h" <tail option>
-# (features that never stop get the tail p instead of running to 1e8).
+# Features that never stop get the tail p (--tail-fit) instead of running
+# on towards 1e8 relabelings.
+run "sequential h = $h + tail" "$tail_b" --stop-after "$h" --tail-fit "$h"

@@ -436,3 +436,46 @@ fn tail_fit_serves_welch_and_rank_sum() {
         }
     }
 }
+
+/// Sequential stopping with the tail fit (issue: "extrapolate for those
+/// that never stop"): a feature that never reaches H exceedances met every
+/// relabelling, so its tail estimate is the one a fixed-B run with the tail
+/// fit gives, bit for bit; a feature that stopped keeps H / L (Besag &
+/// Clifford 1991) and is never extrapolated.
+#[test]
+fn sequential_stopping_hands_the_features_that_never_stop_to_the_tail_fit() {
+    let rows = data(40, 160, 6);
+    let run = |stop_after: Option<u64>| {
+        let dir = tempfile::tempdir().unwrap();
+        let mut o = tail_options(dir.path());
+        o.maxt = MaxtMode::Single;
+        o.stop_after = stop_after;
+        scan_rows(&rows, &labels(), &o);
+        Table::read(&dir.path().join("results.tsv"))
+    };
+    let (fixed, sequential) = (run(None), run(Some(10)));
+    let (source, p) = (sequential.text("p_source"), sequential.f64s("p_perm"));
+    let (exceed, used) = (sequential.f64s("n_exceed"), sequential.f64s("n_relabel"));
+    let (fixed_source, fixed_p) = (fixed.text("p_source"), fixed.f64s("p_perm"));
+    let mut extrapolated = 0;
+    let mut stopped = 0;
+    for k in 0..rows.len() {
+        match source[k].as_str() {
+            "tail" => {
+                extrapolated += 1;
+                assert_eq!(used[k], B as f64, "feature {k}");
+                assert!(exceed[k] < 10.0, "feature {k}");
+                assert_eq!(fixed_source[k], "tail", "feature {k}");
+                assert_eq!(p[k], fixed_p[k], "feature {k}");
+            }
+            "sequential" => {
+                stopped += 1;
+                assert_eq!(exceed[k], 10.0, "feature {k}");
+                assert_eq!(p[k], 10.0 / used[k], "feature {k}");
+            }
+            other => assert_eq!(other, "counted", "feature {k}"),
+        }
+    }
+    assert!(extrapolated >= 20, "{extrapolated} extrapolated");
+    assert!(stopped >= 100, "{stopped} stopped early");
+}
