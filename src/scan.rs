@@ -345,7 +345,9 @@ fn scan_into_out_dir(
     let _ = std::fs::remove_file(options.out.join(crate::shard::SHARD_RECORD));
     let spill_dir = options.out.join(SPILL_DIR);
     let runs_dir = spill_dir.join("rank-runs");
-    let sorter_memory = options.memory_bytes / 4;
+    // An eighth: small enough that even ~100,000 features fill the sorter,
+    // so that peak memory is the same for any larger number of features.
+    let sorter_memory = options.memory_bytes / 8;
     let step_down = options.maxt == MaxtMode::StepDown;
     let mut pipeline_options = pipeline_options(options, design.samples.len(), b_total);
     pipeline_options.prepare_only = step_down;
@@ -926,8 +928,9 @@ pub(crate) fn apply_step_down(
         spill_dir,
         b_total,
         features,
-        // Scatter buckets: a small share, so that memory stays flat in F.
-        memory_bytes / 16,
+        // Scatter buckets: a small share, so that memory stays flat in F
+        // (a bucket is read whole, with one result slot per feature).
+        memory_bytes / 64,
         &mut |_, result| match result {
             Some(r) => writer.push(&[r.exceed as f64, r.p_maxt]),
             None => writer.push(&[0.0, f64::NAN]),
