@@ -799,12 +799,17 @@ fn prepare_out_dir(out: &Path) -> Result<()> {
 /// chunks in flight (raw f64, standardized f64 and f32 copies per value).
 fn pipeline_options(options: &ScanOptions, n: usize, b_total: usize) -> PipelineOptions {
     let threads = options.threads.max(1);
-    let queue_depth = threads + 1;
-    let in_flight = (2 * queue_depth + 2 * threads) as u64;
     let per_row = (n * 28 + 160) as u64;
     let fixed = (n * b_total * 5) as u64;
     let budget = (options.memory_bytes / 2).saturating_sub(fixed);
-    let derived = (budget / (in_flight * per_row)).clamp(64, 65_536) as usize;
+    let rows_at = |depth: usize| budget / ((2 * depth + 2 * threads) as u64 * per_row);
+    // A tight budget shortens the queue before it makes chunks small (small
+    // chunks cost per-chunk overhead, a short queue only some overlap).
+    let mut queue_depth = threads + 1;
+    while queue_depth > 1 && rows_at(queue_depth) < 1024 {
+        queue_depth -= 1;
+    }
+    let derived = rows_at(queue_depth).clamp(64, 65_536) as usize;
     PipelineOptions {
         threads,
         chunk_rows: options.chunk_rows.unwrap_or(derived),

@@ -141,8 +141,8 @@ impl RowSorter {
         // share a fixed budget, so many runs do not add memory.
         self.keys = Vec::new();
         self.rows = Vec::new();
-        let per_run = (self.merge_bytes / self.runs.len().max(1) as u64)
-            .clamp(16 << 10, 256 << 10) as usize;
+        let per_run =
+            (self.merge_bytes / self.runs.len().max(1) as u64).clamp(16 << 10, 256 << 10) as usize;
         let mut runs = Vec::new();
         let mut heap = BinaryHeap::new();
         for (r, path) in self.runs.iter().enumerate() {

@@ -17,8 +17,8 @@ mod finish;
 mod histogram;
 mod simd;
 
-use simd::orient_all;
 pub use histogram::{NullHistogram, UpperTail};
+use simd::orient_all;
 
 /// Features per GEMM tile (rows of the left operand).
 const ROW_TILE: usize = 64;

@@ -142,8 +142,12 @@ mod tests {
         // Lengths not a multiple of any vector width, NaN and edge values.
         let base = [0.5f32, 2.0, 1.0, 1.5, f32::NAN, -3.0, 1.25, 0.99];
         for len in [0, 1, 7, 8, 9, 33, 515] {
-            let tile: Vec<f32> = (0..len).map(|j| base[j % 8] * (1.0 + (j / 8) as f32 * 0.1)).collect();
-            let floors: Vec<f32> = (0..len).map(|j| if j % 5 == 0 { 1.9 } else { 100.0 }).collect();
+            let tile: Vec<f32> = (0..len)
+                .map(|j| base[j % 8] * (1.0 + (j / 8) as f32 * 0.1))
+                .collect();
+            let floors: Vec<f32> = (0..len)
+                .map(|j| if j % 5 == 0 { 1.9 } else { 100.0 })
+                .collect();
             let got = scan_row(&tile, &floors, 1.5, 1.0);
             let want = scan_by_hand(&tile, &floors, 1.5, 1.0);
             assert_eq!((got.clear, got.near, got.over), want, "length {len}");
