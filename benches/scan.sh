@@ -94,8 +94,9 @@ done
 note mem_sizes "$small $big"
 
 echo "== 4. linear cost: Student, single-step, 4 points of features x relabelings"
-q=$((features / 4))
-for point in "$q 1000" "$((2 * q)) 1000" "$((2 * q)) 2000" "$((4 * q)) 2000"; do
+# Large enough that the fixed start-up cost (~0.3 s) does not hide the slope.
+q=$((features / 2)); lb=$((perms / 4))
+for point in "$q $lb" "$((2 * q)) $lb" "$((2 * q)) $((2 * lb))" "$((4 * q)) $((2 * lb))"; do
   read -r n b <<< "$point"
   scan "lin_${n}_$b" "$n" "$b" "$threads" --test student --maxt single
 done

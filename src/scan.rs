@@ -345,9 +345,10 @@ fn scan_into_out_dir(
     let _ = std::fs::remove_file(options.out.join(crate::shard::SHARD_RECORD));
     let spill_dir = options.out.join(SPILL_DIR);
     let runs_dir = spill_dir.join("rank-runs");
-    // An eighth: small enough that even ~100,000 features fill the sorter,
-    // so that peak memory is the same for any larger number of features.
-    let sorter_memory = options.memory_bytes / 8;
+    // A sixteenth: small enough that even ~100,000 features fill the
+    // sorter, so that peak memory is the same for any larger number of
+    // features.
+    let sorter_memory = options.memory_bytes / 16;
     let step_down = options.maxt == MaxtMode::StepDown;
     let mut pipeline_options = pipeline_options(options, design.samples.len(), b_total);
     pipeline_options.prepare_only = step_down;
@@ -795,13 +796,15 @@ fn prepare_out_dir(out: &Path) -> Result<()> {
     Ok(())
 }
 
-/// Chunk size and queue depth from the memory budget: half of it for the
-/// chunks in flight (raw f64, standardized f64 and f32 copies per value).
+/// Chunk size and queue depth from the memory budget: a quarter of it for
+/// the chunks in flight (raw f64, standardized f64 and f32 copies per
+/// value) — a share that ~100,000 features already fill, so that peak
+/// memory does not grow with the number of features.
 fn pipeline_options(options: &ScanOptions, n: usize, b_total: usize) -> PipelineOptions {
     let threads = options.threads.max(1);
     let per_row = (n * 28 + 160) as u64;
     let fixed = (n * b_total * 5) as u64;
-    let budget = (options.memory_bytes / 2).saturating_sub(fixed);
+    let budget = (options.memory_bytes / 4).saturating_sub(fixed);
     let rows_at = |depth: usize| budget / ((2 * depth + 2 * threads) as u64 * per_row);
     // A tight budget shortens the queue before it makes chunks small (small
     // chunks cost per-chunk overhead, a short queue only some overlap).

@@ -16,6 +16,13 @@ use parquet::file::properties::WriterProperties;
 use crate::error::{IoContext, Result, RiffleError};
 use crate::spill::temp_name;
 
+/// Rows per Parquet row group of a results table. The writer holds a whole
+/// row group in memory, so the library default (about a million rows, some
+/// 100 MB of columns) would make peak memory grow with the number of
+/// features up to that size; fixed (not derived from --memory) so that the
+/// output bytes do not depend on the memory budget.
+const RESULTS_ROW_GROUP_ROWS: usize = 65_536;
+
 #[derive(
     Debug, Clone, Copy, PartialEq, Eq, serde::Serialize, serde::Deserialize, clap::ValueEnum,
 )]
@@ -171,6 +178,7 @@ impl ParquetTable {
         let schema = Arc::new(Schema::new(fields));
         let props = WriterProperties::builder()
             .set_compression(Compression::ZSTD(ZstdLevel::try_new(3).unwrap()))
+            .set_max_row_group_row_count(Some(RESULTS_ROW_GROUP_ROWS))
             .set_created_by(format!("riffle {}", env!("CARGO_PKG_VERSION")))
             .build();
         let writer = ArrowWriter::try_new(out, schema.clone(), Some(props))
