@@ -154,6 +154,43 @@ mod tests {
         }
     }
 
+    /// The Welch finisher written out once more as plain scalar f32
+    /// arithmetic: whichever version `welch_row` runs (AVX2 on this CPU or
+    /// the baseline), its bits must equal these, or results would depend
+    /// on the machine.
+    #[test]
+    fn welch_row_bits_equal_plain_scalar_arithmetic() {
+        let (na, nb) = (7.0f32, 9.0f32);
+        let c = WelchConstants {
+            total_sq: na + nb - 1.0,
+            inv_na: 1.0 / na,
+            inv_nb: 1.0 / nb,
+            var_a: 1.0 / ((na - 1.0) * na),
+            var_b: 1.0 / ((nb - 1.0) * nb),
+            diff: 1.0 / na + 1.0 / nb,
+        };
+        let len = 1027;
+        let sums: Vec<f32> = (0..len)
+            .map(|j| ((j * 7919) % 2001) as f32 / 500.0 - 2.0)
+            .collect();
+        let squares: Vec<f32> = (0..len)
+            .map(|j| ((j * 104_729) % 1501) as f32 / 100.0)
+            .collect();
+        let mut got = sums.clone();
+        welch_row(&mut got, &squares, c);
+        for j in 0..len {
+            let (s1, q1) = (sums[j], squares[j]);
+            let ss_b = q1 - s1 * s1 * c.inv_nb;
+            let ss_a = (c.total_sq - q1) - s1 * s1 * c.inv_na;
+            let want = if ss_b > 1e-2 * q1 && ss_a > 1e-2 * (c.total_sq - q1) {
+                s1 * c.diff / (ss_a * c.var_a + ss_b * c.var_b).sqrt()
+            } else {
+                f32::NAN
+            };
+            assert_eq!(got[j].to_bits(), want.to_bits(), "element {j}");
+        }
+    }
+
     #[test]
     fn count_at_least_matches_filter() {
         let maxima: Vec<f64> = (0..1001).map(|j| ((j * 37) % 101) as f64 / 10.0).collect();
