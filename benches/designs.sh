@@ -51,3 +51,5 @@ run "k = 4 groups, one-way F" "$matrix" --group arm --test anova
 run "two groups, Student t + 3 covariates (Freedman–Lane)" "$matrix" --group group --test student --covariates age,sex,site
 run "k = 4 groups, F + 3 covariates (Freedman–Lane)" "$matrix" --group arm --test anova --covariates age,sex,site
 run "two groups, Student t, 10% missing values" "$gappy" --group group --test student
+run "two groups, Welch t" "$matrix" --group group --test welch
+run "two groups, Welch t, 10% missing values" "$gappy" --group group --test welch

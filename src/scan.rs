@@ -384,7 +384,10 @@ fn scan_into_out_dir(
     let _ = std::fs::remove_file(options.out.join(crate::shard::SHARD_RECORD));
     let spill_dir = options.out.join(SPILL_DIR);
     let runs_dir = spill_dir.join("rank-runs");
-    let sorter_memory = options.memory_bytes / 4;
+    // A sixteenth: small enough that even ~100,000 features fill the
+    // sorter, so that peak memory is the same for any larger number of
+    // features.
+    let sorter_memory = options.memory_bytes / 16;
     let step_down = options.maxt_computed() == Some(MaxtMode::StepDown);
     let mut pipeline_options = pipeline_options(options, design.samples.len(), b_total);
     pipeline_options.prepare_only = step_down;
@@ -881,16 +884,23 @@ fn prepare_out_dir(out: &Path) -> Result<()> {
     Ok(())
 }
 
-/// Chunk size and queue depth from the memory budget: half of it for the
-/// chunks in flight (raw f64, standardized f64 and f32 copies per value).
+/// Chunk size and queue depth from the memory budget: a quarter of it for
+/// the chunks in flight (raw f64, standardized f64 and f32 copies per
+/// value) — a share that ~100,000 features already fill, so that peak
+/// memory does not grow with the number of features.
 fn pipeline_options(options: &ScanOptions, n: usize, b_total: usize) -> PipelineOptions {
     let threads = options.threads.max(1);
-    let queue_depth = threads + 1;
-    let in_flight = (2 * queue_depth + 2 * threads) as u64;
     let per_row = (n * 28 + 160) as u64;
     let fixed = (n * b_total * 5) as u64;
-    let budget = (options.memory_bytes / 2).saturating_sub(fixed);
-    let derived = (budget / (in_flight * per_row)).clamp(64, 65_536) as usize;
+    let budget = (options.memory_bytes / 4).saturating_sub(fixed);
+    let rows_at = |depth: usize| budget / ((2 * depth + 2 * threads) as u64 * per_row);
+    // A tight budget shortens the queue before it makes chunks small (small
+    // chunks cost per-chunk overhead, a short queue only some overlap).
+    let mut queue_depth = threads + 1;
+    while queue_depth > 1 && rows_at(queue_depth) < 1024 {
+        queue_depth -= 1;
+    }
+    let derived = rows_at(queue_depth).clamp(64, 65_536) as usize;
     PipelineOptions {
         threads,
         chunk_rows: options.chunk_rows.unwrap_or(derived),
@@ -1021,8 +1031,9 @@ pub(crate) fn apply_step_down(
         spill_dir,
         b_total,
         features,
-        // Scatter buckets: a small share, so that memory stays flat in F.
-        memory_bytes / 16,
+        // Scatter buckets: a small share, so that memory stays flat in F
+        // (a bucket is read whole, with one result slot per feature).
+        memory_bytes / 64,
         &mut |_, result| match result {
             Some(r) => writer.push(&[r.exceed as f64, r.p_maxt]),
             None => writer.push(&[0.0, f64::NAN]),

@@ -41,6 +41,8 @@ pub struct RowSorter {
     dir: PathBuf,
     n: usize,
     capacity_rows: usize,
+    /// Read buffers of all runs together during the merge.
+    merge_bytes: u64,
     keys: Vec<(f64, u64)>,
     rows: Vec<f64>,
     runs: Vec<PathBuf>,
@@ -77,6 +79,7 @@ impl RowSorter {
             dir: dir.to_path_buf(),
             n,
             capacity_rows,
+            merge_bytes: memory_bytes / 4,
             keys: Vec::new(),
             rows: Vec::new(),
             runs: paths,
@@ -91,6 +94,12 @@ impl RowSorter {
     }
 
     pub fn push(&mut self, key: f64, index: u64, row: &[f64]) -> Result<()> {
+        if self.keys.capacity() == 0 {
+            // Once, at the full size: growing by doubling would copy and
+            // could leave up to twice the budget resident.
+            self.keys.reserve_exact(self.capacity_rows);
+            self.rows.reserve_exact(self.capacity_rows * self.n);
+        }
         self.keys.push((key, index));
         self.rows.extend_from_slice(row);
         if self.keys.len() >= self.capacity_rows {
@@ -128,13 +137,19 @@ impl RowSorter {
 
     pub fn finish(mut self) -> Result<SortedRows> {
         self.write_run()?;
+        // The sort buffers are no longer needed; the merge's read buffers
+        // share a fixed budget, so many runs do not add memory.
+        self.keys = Vec::new();
+        self.rows = Vec::new();
+        let per_run =
+            (self.merge_bytes / self.runs.len().max(1) as u64).clamp(16 << 10, 256 << 10) as usize;
         let mut runs = Vec::new();
         let mut heap = BinaryHeap::new();
         for (r, path) in self.runs.iter().enumerate() {
             let file = File::open(path).at(path)?;
             let mut run = RunReader {
                 path: path.clone(),
-                input: BufReader::with_capacity(256 << 10, file),
+                input: BufReader::with_capacity(per_run, file),
                 key: (0.0, 0),
                 row: vec![0.0; self.n],
                 buf: vec![0u8; 16 + 8 * self.n],

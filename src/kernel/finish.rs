@@ -2,8 +2,8 @@
 //! statistics in place, in f32, with ill-conditioned entries set to NaN so
 //! that the counting pass recomputes them in f64.
 
+use super::simd::{orient_all, welch_row, WelchConstants};
 use super::Kernel;
-use crate::stats::Side;
 
 impl Kernel {
     /// Compacts `cols` groups of `width` class sums into between-group sums
@@ -56,30 +56,16 @@ impl Kernel {
     pub(super) fn welch_tile(&self, sums: &mut [f32], squares: &[f32]) {
         let sizes = self.spec.sizes;
         let (na, nb) = (sizes.n_a as f32, sizes.n_b as f32);
-        let total_sq = na + nb - 1.0;
         let (inv_na, inv_nb) = (1.0 / na, 1.0 / nb);
-        let (var_a, var_b) = (1.0 / ((na - 1.0) * na), 1.0 / ((nb - 1.0) * nb));
-        let diff = inv_na + inv_nb;
-        // Branch-free so that it vectorizes; the side is applied after.
-        for (v, &q1) in sums.iter_mut().zip(squares) {
-            let s1 = *v;
-            let s1sq = s1 * s1;
-            let q0 = total_sq - q1;
-            let ss_b = q1 - s1sq * inv_nb;
-            let ss_a = q0 - s1sq * inv_na;
-            let conditioned = (ss_b > 1e-2 * q1) & (ss_a > 1e-2 * q0);
-            let t = s1 * diff / (ss_a * var_a + ss_b * var_b).sqrt();
-            *v = if conditioned { t } else { f32::NAN };
-        }
+        let constants = WelchConstants {
+            total_sq: na + nb - 1.0,
+            inv_na,
+            inv_nb,
+            var_a: 1.0 / ((na - 1.0) * na),
+            var_b: 1.0 / ((nb - 1.0) * nb),
+            diff: inv_na + inv_nb,
+        };
+        welch_row(sums, squares, constants);
         orient_all(self.spec.side, sums);
-    }
-}
-
-/// "Larger is more extreme" for a whole slice, the side chosen once.
-pub(super) fn orient_all(side: Side, values: &mut [f32]) {
-    match side {
-        Side::Both => values.iter_mut().for_each(|v| *v = v.abs()),
-        Side::Greater => {}
-        Side::Less => values.iter_mut().for_each(|v| *v = -*v),
     }
 }

@@ -17,9 +17,10 @@ mod finish;
 mod histogram;
 mod masked;
 mod sequential;
+mod simd;
 
-use finish::orient_all;
 pub use histogram::{NullHistogram, UpperTail};
+use simd::orient_all;
 
 /// Features per GEMM tile (rows of the left operand).
 const ROW_TILE: usize = 64;
@@ -327,19 +328,25 @@ impl Kernel {
         buffers: &'a mut RowBuffers,
     ) -> RowsView<'a> {
         let squares = self.spec.test.needs_squares();
+        let n = self.units();
         // Missing values (NaN, masked rows) enter the sums as 0.
         let f32_or_zero = |v: f64| if v.is_nan() { 0.0 } else { v as f32 };
         buffers.z32.clear();
-        buffers
-            .z32
-            .extend(standardized.iter().map(|&v| f32_or_zero(v)));
-        buffers.sq32.clear();
         if squares {
+            // Each block of ROW_TILE rows is followed by its squares, so
+            // that one GEMM call (sharing one packing of the weights) gives
+            // both the sums and the sums of squares.
+            for block in standardized.chunks(ROW_TILE * n.max(1)) {
+                buffers.z32.extend(block.iter().map(|&v| f32_or_zero(v)));
+                buffers
+                    .z32
+                    .extend(block.iter().map(|&v| f32_or_zero(v * v)));
+            }
+        } else {
             buffers
-                .sq32
-                .extend(standardized.iter().map(|&v| f32_or_zero(v * v)));
+                .z32
+                .extend(standardized.iter().map(|&v| f32_or_zero(v)));
         }
-        let n = self.units();
         buffers.band.clear();
         buffers.slack.clear();
         buffers.observed.clear();
@@ -373,7 +380,6 @@ impl Kernel {
         RowsView {
             rows: obs.len(),
             z32: &buffers.z32,
-            sq32: &buffers.sq32,
             mask32: &buffers.mask32,
             band: &buffers.band,
             slack: &buffers.slack,
@@ -395,19 +401,22 @@ impl Kernel {
         let n = self.units();
         let r = self.spec.width();
         let squares = self.spec.test.needs_squares();
-        tiles.sums.resize(ROW_TILE * COL_TILE * r, 0.0);
-        tiles
-            .squares
-            .resize(if squares { ROW_TILE * COL_TILE } else { 0 }, 0.0);
+        // Welch stacks each block's squared rows under its rows (see
+        // `load_rows`): one GEMM of twice the rows.
+        let stack = if squares { 2 } else { 1 };
+        tiles.sums.resize(stack * ROW_TILE * COL_TILE * r, 0.0);
         let col_end = col_start + cols;
         for row0 in (0..rows.rows).step_by(ROW_TILE) {
             let rt = ROW_TILE.min(rows.rows - row0);
             for col0 in (col_start..col_end).step_by(COL_TILE) {
                 let ct = COL_TILE.min(col_end - col0);
-                self.multiply(&rows.z32[row0 * n..], rt, col0 * r, ct * r, &mut tiles.sums);
-                if squares {
-                    self.multiply(&rows.sq32[row0 * n..], rt, col0, ct, &mut tiles.squares);
-                }
+                self.multiply(
+                    &rows.z32[stack * row0 * n..],
+                    stack * rt,
+                    col0 * r,
+                    ct * r,
+                    &mut tiles.sums,
+                );
                 let observed = &rows.observed[row0..row0 + rt];
                 let masked = observed.iter().any(|&m| m < n);
                 if masked {
@@ -415,18 +424,19 @@ impl Kernel {
                     let masks = &mut tiles.masks;
                     self.multiply(&rows.mask32[row0 * n..], rt, col0 * r, ct * r, masks);
                 }
+                let (sums, sq) = tiles.sums.split_at_mut(rt * ct * r);
                 for (i, &row_observed) in observed.iter().enumerate() {
-                    let wide = &mut tiles.sums[i * ct * r..(i + 1) * ct * r];
+                    let wide = &mut sums[i * ct * r..(i + 1) * ct * r];
                     if masked && row_observed < n {
                         let squares = if squares {
-                            &tiles.squares[i * ct..(i + 1) * ct]
+                            &sq[i * ct..(i + 1) * ct]
                         } else {
                             &[]
                         };
                         let masks = &tiles.masks[i * ct * r..(i + 1) * ct * r];
                         self.masked_tile(wide, squares, masks, row_observed);
                     } else if squares {
-                        self.welch_tile(wide, &tiles.squares[i * ct..(i + 1) * ct]);
+                        self.welch_tile(wide, &sq[i * ct..(i + 1) * ct]);
                     } else if self.spec.model.is_some() {
                         self.model_tile(wide, ct);
                     } else if r > 1 {
@@ -542,18 +552,12 @@ impl Kernel {
         }
         // Fast pass (vectorizes): clear exceedances, and whether any value
         // needs f64 — near the observed one, or above a running maximum.
-        let mut clear = 0u32;
-        let mut near = false;
-        let mut over = false;
-        for (&v, &floor) in tile.iter().zip(floors.iter()) {
-            clear += u32::from(v > row.above);
-            near |= !((v > row.above) | (v < row.below));
-            over |= v + row.slack > floor;
-        }
+        let simd::RowScan { clear, near, over } =
+            simd::scan_row(tile, &floors[..tile.len()], row.above, row.below, row.slack);
         let mut count = u64::from(clear);
         if !(near || over) {
             if let Some(reached) = reached {
-                *reached += maxima.iter().filter(|&&m| m >= row.threshold).count() as u64;
+                *reached += simd::count_at_least(maxima, row.threshold);
             }
             return count;
         }
@@ -587,7 +591,7 @@ impl Kernel {
             }
         }
         if let Some(reached) = reached {
-            *reached += maxima.iter().filter(|&&m| m >= row.threshold).count() as u64;
+            *reached += simd::count_at_least(maxima, row.threshold);
         }
         count
     }
@@ -656,8 +660,9 @@ impl RankState {
 
 #[derive(Default)]
 struct RowBuffers {
+    /// f32 rows; for Welch, each block of `ROW_TILE` rows followed by
+    /// their squares.
     z32: Vec<f32>,
-    sq32: Vec<f32>,
     /// 1 where observed (only when some row has missing values).
     mask32: Vec<f32>,
     band: Vec<f64>,
@@ -668,15 +673,14 @@ struct RowBuffers {
 
 #[derive(Default)]
 struct TileBuffers {
+    /// One GEMM tile: sums (and, stacked below them, sums of squares).
     sums: Vec<f32>,
-    squares: Vec<f32>,
     masks: Vec<f32>,
 }
 
 struct RowsView<'a> {
     rows: usize,
     z32: &'a [f32],
-    sq32: &'a [f32],
     mask32: &'a [f32],
     band: &'a [f64],
     slack: &'a [f32],

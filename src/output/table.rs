@@ -11,10 +11,18 @@ use arrow_array::{ArrayRef, RecordBatch};
 use arrow_schema::{DataType, Field, Schema};
 use parquet::arrow::ArrowWriter;
 use parquet::basic::{Compression, ZstdLevel};
-use parquet::file::properties::WriterProperties;
+use parquet::file::properties::{EnabledStatistics, WriterProperties};
+use parquet::schema::types::ColumnPath;
 
 use crate::error::{IoContext, Result, RiffleError};
 use crate::spill::temp_name;
+
+/// Rows per Parquet row group of a results table. The writer holds a whole
+/// row group in memory, so the library default (about a million rows, some
+/// 100 MB of columns) would make peak memory grow with the number of
+/// features up to that size; fixed (not derived from --memory) so that the
+/// output bytes do not depend on the memory budget.
+const RESULTS_ROW_GROUP_ROWS: usize = 65_536;
 
 #[derive(
     Debug, Clone, Copy, PartialEq, Eq, serde::Serialize, serde::Deserialize, clap::ValueEnum,
@@ -169,10 +177,20 @@ impl ParquetTable {
             })
             .collect();
         let schema = Arc::new(Schema::new(fields));
-        let props = WriterProperties::builder()
+        let mut props = WriterProperties::builder()
             .set_compression(Compression::ZSTD(ZstdLevel::try_new(3).unwrap()))
-            .set_created_by(format!("riffle {}", env!("CARGO_PKG_VERSION")))
-            .build();
+            .set_max_row_group_row_count(Some(RESULTS_ROW_GROUP_ROWS))
+            .set_created_by(format!("riffle {}", env!("CARGO_PKG_VERSION")));
+        if let Some((name, ColumnKind::Text)) = columns.first() {
+            // The feature ids are all distinct: a dictionary never pays, and
+            // their min/max statistics (string comparisons on every value)
+            // took a sixth of a scan at B = 100.
+            let id = ColumnPath::from(name.as_str());
+            props = props
+                .set_column_dictionary_enabled(id.clone(), false)
+                .set_column_statistics_enabled(id, EnabledStatistics::None);
+        }
+        let props = props.build();
         let writer = ArrowWriter::try_new(out, schema.clone(), Some(props))
             .map_err(|e| RiffleError::io(&temp, std::io::Error::other(e)))?;
         let builders = columns

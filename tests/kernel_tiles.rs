@@ -1,0 +1,110 @@
+//! The GEMM kernel's exceedance counts against brute force written here,
+//! in f64, one relabelling at a time, on shapes that cross tile borders:
+//! more features than one row tile (64) with a partial last tile, and more
+//! relabelings than one column tile (512) with a partial last one. Welch t
+//! stacks each tile's squared rows under its rows in one multiply, so the
+//! partial tiles are where a layout slip would show.
+//!
+//! Reference formulas: Welch t = (mean_B - mean_A) / sqrt(s_A^2/n_A +
+//! s_B^2/n_B) (Welch 1947, Biometrika 34), Student t with the pooled
+//! variance (Student 1908, Biometrika 6); a statistic within a relative
+//! 1e-10 of the observed one counts as reaching it (riffle's documented tie
+//! rule, DEVELOPERS.md "Kernel notes").
+
+use riffle::design::Relabelings;
+use riffle::kernel::{Kernel, KernelScratch};
+use riffle::stats::prepare::TestSpec;
+use riffle::stats::{Side, Sizes, TestKind};
+
+fn splitmix(state: &mut u64) -> f64 {
+    *state = state.wrapping_add(0x9E37_79B9_7F4A_7C15);
+    let mut x = *state;
+    x = (x ^ (x >> 30)).wrapping_mul(0xBF58_476D_1CE4_E5B9);
+    x = (x ^ (x >> 27)).wrapping_mul(0x94D0_49BB_1331_11EB);
+    x ^= x >> 31;
+    (x >> 11) as f64 / (1u64 << 53) as f64
+}
+
+fn t_statistic(test: TestKind, row: &[f64], classes: &[u8]) -> f64 {
+    let group = |c: u8| -> Vec<f64> {
+        row.iter()
+            .zip(classes)
+            .filter(|(_, &k)| k == c)
+            .map(|(&v, _)| v)
+            .collect()
+    };
+    let (a, b) = (group(0), group(1));
+    let mean = |x: &[f64]| x.iter().sum::<f64>() / x.len() as f64;
+    let ss = |x: &[f64]| {
+        let m = mean(x);
+        x.iter().map(|v| (v - m) * (v - m)).sum::<f64>()
+    };
+    let (na, nb) = (a.len() as f64, b.len() as f64);
+    let diff = mean(&b) - mean(&a);
+    match test {
+        TestKind::Welch => diff / (ss(&a) / (na - 1.0) / na + ss(&b) / (nb - 1.0) / nb).sqrt(),
+        TestKind::Student => {
+            let pooled = (ss(&a) + ss(&b)) / (na + nb - 2.0);
+            diff / (pooled * (1.0 / na + 1.0 / nb)).sqrt()
+        }
+        _ => unreachable!(),
+    }
+}
+
+#[test]
+fn counts_equal_brute_force_across_partial_tiles() {
+    let (n_a, n_b) = (7, 6);
+    let n = n_a + n_b;
+    let features = 150; // two full row tiles of 64 and one of 22
+    let perms = 700; // one full column tile of 512 and one of 188
+    let labels: Vec<u8> = (0..n).map(|i| u8::from(i >= n_a)).collect();
+    let mut state = 11u64;
+    let raw: Vec<f64> = (0..features * n)
+        .map(|k| {
+            let shift = if (k / n) % 5 == 0 && labels[k % n] == 1 {
+                1.0
+            } else {
+                0.0
+            };
+            splitmix(&mut state) + splitmix(&mut state) + shift
+        })
+        .collect();
+    for test in [TestKind::Welch, TestKind::Student] {
+        for side in [Side::Both, Side::Greater] {
+            let relabel = Relabelings::draw(&labels, perms, 3);
+            assert!(!relabel.exact);
+            let rows: Vec<Vec<u8>> = (0..relabel.count)
+                .map(|b| relabel.row(b).to_vec())
+                .collect();
+            let spec = TestSpec::two_group(test, side, Sizes { n_a, n_b });
+            let kernel = Kernel::new(spec, labels.clone(), relabel);
+            let orient = |t: f64| if side == Side::Both { t.abs() } else { t };
+            let expected: Vec<u64> = raw
+                .chunks(n)
+                .map(|row| {
+                    let observed = orient(t_statistic(test, row, &labels));
+                    let reach = observed - 1e-10 * (1.0 + observed.abs());
+                    rows.iter()
+                        .filter(|classes| orient(t_statistic(test, row, classes)) >= reach)
+                        .count() as u64
+                })
+                .collect();
+            // All features in one chunk, and in chunks of 37 rows.
+            for chunk in [features, 37] {
+                let mut scratch = KernelScratch::default();
+                let mut got = Vec::new();
+                for start in (0..features).step_by(chunk) {
+                    let rows_here = chunk.min(features - start);
+                    let out = kernel.run_chunk(
+                        &raw[start * n..(start + rows_here) * n],
+                        rows_here,
+                        true,
+                        &mut scratch,
+                    );
+                    got.extend(out.features.iter().map(|f| f.exceed));
+                }
+                assert_eq!(got, expected, "{test:?} {side:?}, chunks of {chunk}");
+            }
+        }
+    }
+}
