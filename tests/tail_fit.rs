@@ -156,7 +156,6 @@ fn tail_pvalues_track_the_t_distribution_on_normal_data() {
         "all: {total} features, {:.3} within 0.3",
         near / total as f64
     );
-    assert!(near / total as f64 >= 0.85, "{report:?}");
     assert!(total >= 200, "{report:?}");
     // Every feature this strong was reached < 10 times and was fitted.
     for r in &report {
@@ -173,17 +172,14 @@ fn tail_pvalues_track_the_t_distribution_on_normal_data() {
             assert_eq!(p_perm[k], (exceed[k] + 1.0) / (B as f64 + 1.0));
         }
     }
-    // The goal, 90% within 0.3 log10 over 1e-8..1e-4, is met only
-    // at the edge (BENCHMARKS.md: 0.899 overall on each of two samples of
-    // ~1,150 features, 0.95 0.92 0.87 0.86 per decade from 1e-4 down):
-    // with B = 2,000 the scale of the tail comes from at most 1,000
-    // exceedances, and its relative error, 1/sqrt(1000), times the observed
-    // excess (ln 1e8 - ln 2 ~ 18 at 1e-8) is ~0.25 log10 by itself. What
-    // is asserted here, per decade: no bias to speak of (median error
-    // within 0.15 log10), almost every estimate within one order of
-    // magnitude, and shares within 0.3 at the large-sample rates rounded
-    // down by about 1.5 binomial standard errors of this sample (~50
-    // features a decade).
+    // The goal: at least 90% within 0.3 log10 over 1e-8..1e-4
+    // (BENCHMARKS.md: 0.967 and 0.964 on two samples of ~1,150 features,
+    // 0.94 or more in every decade), and no p-value 0 (checked above).
+    assert!(near / total as f64 >= 0.9, "{report:?}");
+    // Per decade: no bias to speak of (median error within 0.15 log10),
+    // almost every estimate within one order of magnitude, and shares
+    // within 0.3 at the large-sample rates rounded down by about 3
+    // binomial standard errors of this sample (~50 features a decade).
     for r in &report {
         let bound = ACCURACY_BOUNDS_PER_DECADE[(r.0 - 4) as usize];
         assert!(r.2 >= bound, "decade {}: {report:?}", r.0);
@@ -194,7 +190,7 @@ fn tail_pvalues_track_the_t_distribution_on_normal_data() {
 
 /// Shares within 0.3 log10 required per decade of the true p (1e-5..1e-4,
 /// 1e-6..1e-5, 1e-7..1e-6, 1e-8..1e-7).
-const ACCURACY_BOUNDS_PER_DECADE: [f64; 4] = [0.88, 0.85, 0.8, 0.78];
+const ACCURACY_BOUNDS_PER_DECADE: [f64; 4] = [0.88, 0.88, 0.85, 0.85];
 
 #[test]
 fn tail_fit_results_do_not_depend_on_threads_chunks_or_maxt_mode() {

@@ -33,7 +33,7 @@ pub struct TailOptions {
     /// Largest share of the null the first fit may take: the GPD describes
     /// excesses over a HIGH threshold (Pickands 1975), so on the raw
     /// statistic the upper quarter is as low as we let it go; on the
-    /// reference scale (see `for_reference_scale`) half.
+    /// reference scale (see `for_reference_scale`) all of it.
     pub max_share: f64,
     /// How many exceedances to drop after a rejected fit (Knijnenburg: 10).
     pub step: usize,
@@ -82,13 +82,14 @@ impl Default for TailOptions {
 
 impl TailOptions {
     /// The settings `scan --tail-fit` uses on the reference scale (see
-    /// `reference`): the first fit takes the whole upper half of the null
-    /// instead of Knijnenburg's 250 exceedances. On that scale the excesses
-    /// of an adequate reference are exponential over any threshold
-    /// (memorylessness), so a lower threshold costs no bias there, and the
-    /// goodness-of-fit step still lowers N wherever the data say otherwise;
-    /// what it buys is variance: the scale's relative standard error is
-    /// 1/sqrt(N), multiplied by the excess of the observed statistic when
+    /// `reference`): the first fit takes the whole null (all but its
+    /// smallest value) instead of Knijnenburg's 250 exceedances. On that
+    /// scale the excesses of an adequate reference are exponential over any
+    /// threshold (memorylessness), so a lower threshold costs no bias there,
+    /// and the goodness-of-fit step still raises the threshold (10 fewer
+    /// exceedances at a time) wherever the data say otherwise; what it buys
+    /// is variance: the scale's relative standard error is 1/sqrt(N),
+    /// multiplied by the excess of the observed statistic when
     /// extrapolating (BENCHMARKS.md, tail accuracy).
     ///
     /// And the likelihood-ratio test of an exponential tail at level 0.01:
@@ -100,7 +101,7 @@ impl TailOptions {
     pub fn for_reference_scale() -> Self {
         TailOptions {
             max_exceedances: usize::MAX,
-            max_share: 0.5,
+            max_share: 1.0,
             shape_test_level: 0.01,
             ..TailOptions::default()
         }
@@ -108,8 +109,10 @@ impl TailOptions {
 
     /// Most exceedances the first fit of `total` null statistics may take.
     pub fn largest_fit(&self, total: usize) -> usize {
+        // At most total - 1: the threshold lies below the fitted values.
         self.max_exceedances
             .min((total as f64 * self.max_share) as usize)
+            .min(total.saturating_sub(1))
     }
 }
 
