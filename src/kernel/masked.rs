@@ -47,6 +47,19 @@ impl Kernel {
                     };
                 }
             }
+            // Sign flips keep the observed pairs: no counts needed (see
+            // `stats::masked_paired`; the denominator is at least
+            // n (n - 1)^2, so no entry is ill-conditioned).
+            TestKind::PairedT => {
+                let m = big_na;
+                let numerator = m * (m - 1.0) * (n - 1.0);
+                let base = (m - 1.0) * n * (n - 1.0);
+                for v in sums.iter_mut() {
+                    let s = *v;
+                    let denominator = (base + (n - m) * s * s).max(f32::MIN_POSITIVE);
+                    *v = s * (numerator / denominator).sqrt();
+                }
+            }
             TestKind::RankSum => {
                 for (v, &nb) in sums.iter_mut().zip(masks) {
                     let na = n - nb;
@@ -138,6 +151,11 @@ impl Kernel {
             // per unit of S1, and conditioning keeps each group's variance
             // above a hundredth of its sum of squares (a factor 10).
             TestKind::Welch => 10.0 * (n / (n - 1.0)).sqrt(),
+            // d S_eq / d S at its largest, S^2 = n (n - 1):
+            // sqrt(m (m - 1)^3 / (n (n - 1)^3)); doubled for safety.
+            TestKind::PairedT => {
+                2.0 * (big_n * (big_n - 1.0).powi(3) / (n * (n - 1.0).max(1.0).powi(3))).sqrt()
+            }
             _ => 10.0 * (big_n.sqrt() * big_n / n + 1.0),
         };
         if self.spec.test.is_k_group() {
@@ -146,10 +164,17 @@ impl Kernel {
             let k = self.spec.group_sizes.len() as f64;
             stretch *= 2.0 * k * k * big_n.sqrt();
         }
-        let band = 2e-4 * (1.0 + kernel_obs.abs()) + stretch * delta;
-        // Student and rank-sum statistics stay below N in size; Welch's
-        // relative term is already in the maxima' floors.
-        let slack = stretch * delta + 2e-4 * (1.0 + big_n);
+        // Paired t's finisher loses up to m / n ulps to cancellation in its
+        // denominator (terms of size m n^2 leave at least n (n - 1)^2).
+        let relative = if self.spec.test == TestKind::PairedT {
+            2e-4 + 16.0 * F32_UNIT * big_n / n
+        } else {
+            2e-4
+        };
+        let band = relative * (1.0 + kernel_obs.abs()) + stretch * delta;
+        // Student, rank-sum and paired statistics stay below N in size;
+        // Welch's relative term is already in the maxima' floors.
+        let slack = stretch * delta + relative * (1.0 + big_n);
         (band, slack as f32)
     }
 }

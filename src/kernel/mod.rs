@@ -123,9 +123,14 @@ impl Kernel {
     /// for the few features whose null tail is fitted (`crate::tail`).
     pub fn relabelled_stats(&self, z: &[f64], out: &mut Vec<f64>) {
         out.clear();
+        let masked = z.iter().any(|v| v.is_nan());
         out.extend((0..self.relabel.count).map(|b| {
-            self.spec
-                .kernel_stat_with(z, assignment(&self.spec, &self.relabel, b))
+            let relabelling = assignment(&self.spec, &self.relabel, b);
+            if masked {
+                self.spec.masked_kernel_stat_with(z, relabelling)
+            } else {
+                self.spec.kernel_stat_with(z, relabelling)
+            }
         }));
     }
 
@@ -323,7 +328,8 @@ impl Kernel {
             buffers.observed.push(n - missing);
         }
         buffers.mask32.clear();
-        if buffers.observed.iter().any(|&m| m < n) {
+        if buffers.observed.iter().any(|&m| m < n) && self.spec.test.design() != DesignKind::Paired
+        {
             buffers.mask32.extend(
                 standardized
                     .iter()
@@ -370,7 +376,9 @@ impl Kernel {
                 }
                 let observed = &rows.observed[row0..row0 + rt];
                 let masked = observed.iter().any(|&m| m < n);
-                if masked {
+                // Sign flips keep the observed pairs: no mask GEMM.
+                let mask_gemm = masked && self.spec.test.design() != DesignKind::Paired;
+                if mask_gemm {
                     tiles.masks.resize(ROW_TILE * COL_TILE * r, 0.0);
                     let masks = &mut tiles.masks;
                     self.multiply(&rows.mask32[row0 * n..], rt, col0 * r, ct * r, masks);
@@ -383,7 +391,11 @@ impl Kernel {
                         } else {
                             &[]
                         };
-                        let masks = &tiles.masks[i * ct * r..(i + 1) * ct * r];
+                        let masks = if mask_gemm {
+                            &tiles.masks[i * ct * r..(i + 1) * ct * r]
+                        } else {
+                            &[]
+                        };
                         self.masked_tile(wide, squares, masks, row_observed);
                     } else if squares {
                         self.welch_tile(wide, &tiles.squares[i * ct..(i + 1) * ct]);

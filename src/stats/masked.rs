@@ -35,7 +35,7 @@ impl TestSpec {
     /// Whether features with missing values are tested on their observed
     /// samples (otherwise they are reported untested, `missing values`).
     pub fn supports_missing(&self) -> bool {
-        self.model.is_none() && self.test.design() == DesignKind::Groups
+        self.model.is_none() && self.test.design() != DesignKind::Trait
     }
 
     /// A row with NaN: the test on the observed values, with `z` the
@@ -49,6 +49,9 @@ impl TestSpec {
     ) -> Prepared {
         if self.test.is_k_group() {
             return self.prepare_masked_k_groups(raw, labels, z, scratch);
+        }
+        if self.test.design() == DesignKind::Paired {
+            return self.prepare_masked_paired(raw, z, scratch);
         }
         let mut values = std::mem::take(&mut scratch.observed_raw);
         let mut classes = std::mem::take(&mut scratch.observed_labels);
@@ -178,10 +181,14 @@ impl TestSpec {
     /// a relabelling (group tests), in f64.
     pub fn masked_kernel_stat_with(&self, z: &[f64], assignment: Assignment<'_>) -> f64 {
         match assignment {
+            Assignment::Flips(flips) => self.masked_paired_stat(z, Some(flips)),
+            Assignment::Observed(_) if self.test.design() == DesignKind::Paired => {
+                self.masked_paired_stat(z, None)
+            }
             Assignment::Classes(classes) | Assignment::Observed(classes) => {
                 self.masked_kernel_stat(z, classes)
             }
-            // Only group tests take missing values (`supports_missing`).
+            // Trait designs take no missing values (`supports_missing`).
             _ => f64::NAN,
         }
     }

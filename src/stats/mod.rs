@@ -8,6 +8,7 @@
 //! mean difference and rank-sum, and the Welch t itself for Welch.
 
 pub mod masked;
+mod masked_paired;
 pub mod prepare;
 pub mod relabelled;
 
