@@ -772,7 +772,9 @@ fn k_groups_with_missing_values_equal_brute_force() {
     }
 }
 
-/// Designs without masking say so for a feature with missing values.
+/// Designs without masking (Spearman: the trait's ranks among a feature's
+/// observed samples change with every relabelling) say so for a feature
+/// with missing values.
 #[test]
 fn unmasked_designs_name_the_reason() {
     let trait_values = [3.1, 0.5, 2.2, 4.8, 1.0, 2.6, 1.7, 0.9];
@@ -791,7 +793,7 @@ fn unmasked_designs_name_the_reason() {
     };
     let dir = tempfile::tempdir().unwrap();
     let mut o = options(dir.path());
-    o.test = TestKind::Pearson;
+    o.test = TestKind::Spearman;
     o.perms = 99;
     let summary = common::scan_with_sheet(
         &rows,
@@ -1222,4 +1224,287 @@ fn paired_masked_rows_are_deterministic_and_leave_complete_rows_unchanged() {
     assert_eq!(table.f64s("n_a")[1], 2.0);
     assert!(table.f64s("p_perm")[1].is_nan());
     assert_eq!(table.text("note")[0], "");
+}
+
+// ---- Trait designs (Pearson): each feature correlates its observed
+// samples with their trait values. ----
+
+const TRAIT: [f64; 7] = [3.1, 0.5, 2.2, 4.8, 1.0, 2.6, 1.7];
+
+fn scan_trait(rows: &[Vec<f64>], o: &riffle::scan::ScanOptions) -> riffle::scan::ScanSummary {
+    let mut sheet = String::from("sample\tage\n");
+    for (i, t) in TRAIT.iter().enumerate() {
+        sheet.push_str(&format!("s{i}\t{t}\n"));
+    }
+    let columns = riffle::design::DesignColumns {
+        trait_column: Some("age".into()),
+        ..Default::default()
+    };
+    common::scan_with_sheet(rows, &sheet, riffle::stats::DesignKind::Trait, &columns, o)
+}
+
+/// Pearson r of the observed values of `x` with the trait values that
+/// `order` puts on their samples (sample i takes TRAIT[order[i]]); the
+/// textbook product-moment formula (common practice, no single source).
+fn observed_r(x: &[f64], order: &[usize]) -> f64 {
+    let (a, b): (Vec<f64>, Vec<f64>) = x
+        .iter()
+        .zip(order)
+        .filter(|(v, _)| !v.is_nan())
+        .map(|(&v, &k)| (v, TRAIT[k]))
+        .unzip();
+    let (ma, mb) = (mean(&a), mean(&b));
+    let sab: f64 = a.iter().zip(&b).map(|(p, q)| (p - ma) * (q - mb)).sum();
+    let saa: f64 = a.iter().map(|p| (p - ma) * (p - ma)).sum();
+    let sbb: f64 = b.iter().map(|q| (q - mb) * (q - mb)).sum();
+    sab / (saa * sbb).sqrt()
+}
+
+/// Every ordering of 0..n (common practice, no single source).
+fn orderings(n: usize) -> Vec<Vec<usize>> {
+    if n == 0 {
+        return vec![Vec::new()];
+    }
+    let mut out = Vec::new();
+    for rest in orderings(n - 1) {
+        for at in 0..n {
+            let mut o = rest.clone();
+            o.insert(at, n - 1);
+            out.push(o);
+        }
+    }
+    out
+}
+
+fn trait_rows() -> Vec<Vec<f64>> {
+    let mut rng = TestRng::new(17);
+    let mut rows: Vec<Vec<f64>> = (0..10)
+        .map(|f| {
+            let mut row: Vec<f64> = TRAIT
+                .iter()
+                .map(|t| rng.normal() + 0.4 * f as f64 * t)
+                .collect();
+            for j in 0..(f % 3) {
+                row[(3 * f + 2 * j) % 7] = f64::NAN;
+            }
+            row
+        })
+        .collect();
+    rows.push(vec![1.0, 2.0, f64::NAN, 1.0, 3.0, 2.0, 2.0]);
+    rows
+}
+
+/// Exact p over all 7! = 5040 orderings of the trait, by brute force over
+/// the observed samples; r and the observed count are those of the
+/// observed samples.
+#[test]
+fn pearson_exact_p_with_missing_values_equals_brute_force() {
+    let rows = trait_rows();
+    let all = orderings(7);
+    let identity: Vec<usize> = (0..7).collect();
+    let dir = tempfile::tempdir().unwrap();
+    for side in [Side::Both, Side::Greater, Side::Less] {
+        let mut o = options(dir.path());
+        o.test = TestKind::Pearson;
+        o.side = side;
+        o.perms = 10_000;
+        let summary = scan_trait(&rows, &o);
+        assert!(summary.exact);
+        assert_eq!(summary.tested as usize, rows.len());
+        let table = Table::read(&summary.results_path);
+        let (p, stat, n_a) = (
+            table.f64s("p_perm"),
+            table.f64s("statistic"),
+            table.f64s("n_a"),
+        );
+        for (f, row) in rows.iter().enumerate() {
+            let r = observed_r(row, &identity);
+            assert!(
+                (stat[f] - r).abs() < 1e-12,
+                "feature {f}: {} vs {r}",
+                stat[f]
+            );
+            assert_eq!(n_a[f], row.iter().filter(|v| !v.is_nan()).count() as f64);
+            let t_obs = orient(side, r);
+            let reached = all
+                .iter()
+                .filter(|order| orient(side, observed_r(row, order)) >= t_obs - 1e-9)
+                .count();
+            let expected = reached as f64 / all.len() as f64;
+            assert!(
+                (p[f] - expected).abs() < 1e-12,
+                "{side:?} feature {f}: riffle {} brute force {expected}",
+                p[f]
+            );
+        }
+    }
+}
+
+/// Single-step maxT over complete and masked Pearson features against all
+/// 5040 orderings held in memory; the complete-data scale (riffle's
+/// documented choice) is the r of all N samples with the same t as r on
+/// the n observed ones, r_eq^2 = t^2 / (N - 2 + t^2).
+#[test]
+fn pearson_maxt_compares_masked_and_complete_features_on_one_scale() {
+    let rows = trait_rows();
+    let all = orderings(7);
+    let big_n = 7.0;
+    let scale = |x: &[f64], order: &[usize]| -> f64 {
+        let n = x.iter().filter(|v| !v.is_nan()).count() as f64;
+        let r = observed_r(x, order);
+        let t2 = r * r * (n - 2.0) / (1.0 - r * r);
+        (t2 / (big_n - 2.0 + t2)).sqrt()
+    };
+    let dir = tempfile::tempdir().unwrap();
+    let mut o = options(dir.path());
+    o.test = TestKind::Pearson;
+    o.perms = 10_000;
+    o.chunk_rows = Some(4);
+    let table = Table::read(&scan_trait(&rows, &o).results_path);
+    let p_single = table.f64s("p_maxt_single");
+    let identity: Vec<usize> = (0..7).collect();
+    let column_max: Vec<f64> = all
+        .iter()
+        .map(|order| {
+            rows.iter()
+                .map(|x| scale(x, order))
+                .fold(f64::NEG_INFINITY, f64::max)
+        })
+        .collect();
+    for (j, x) in rows.iter().enumerate() {
+        let obs = scale(x, &identity);
+        let single = column_max.iter().filter(|&&c| c >= obs - 1e-9).count();
+        let expected = single as f64 / all.len() as f64;
+        assert!(
+            (p_single[j] - expected).abs() < 1e-12,
+            "single-step {j}: riffle {} brute force {expected}",
+            p_single[j]
+        );
+    }
+}
+
+/// Pearson on 40 samples with offsets, scales, ties and heavy missing
+/// shares: exceedance counts equal an all-f64 count of the textbook r over
+/// the same drawn relabelings (the kernel's f32 sums with their error
+/// band), results do not depend on threads or chunk size, and complete rows
+/// keep every value they have alone.
+#[test]
+fn pearson_masked_counts_equal_an_all_f64_count_and_are_deterministic() {
+    use riffle::design::{DesignColumns, SampleSheet, StudyDesign};
+    let big_n = 40usize;
+    let mut rng = TestRng::new(5);
+    let trait_values: Vec<f64> = (0..big_n).map(|_| 50.0 + 10.0 * rng.normal()).collect();
+    let mut sheet_text = String::from("sample\tage\n");
+    for (i, t) in trait_values.iter().enumerate() {
+        sheet_text.push_str(&format!("s{i}\t{t}\n"));
+    }
+    let mut rows: Vec<Vec<f64>> = (0..90)
+        .map(|f| {
+            let offset = [0.0, 1e4, -3e6][f % 3];
+            let scale = [1.0, 1e-2, 50.0][f / 3 % 3];
+            let slope = [0.0, 0.03, 0.1, 0.3][f % 4];
+            let missing = [0.0, 0.15, 0.4][f / 9 % 3];
+            trait_values
+                .iter()
+                .map(|t| {
+                    if rng.uniform() < missing {
+                        f64::NAN
+                    } else {
+                        offset + scale * (rng.normal() + slope * (t - 50.0))
+                    }
+                })
+                .collect()
+        })
+        .collect();
+    rows[10] = rows[4].clone();
+    for row in rows.iter_mut().skip(60).step_by(3) {
+        for v in row.iter_mut() {
+            *v = (*v * 0.5).round();
+        }
+    }
+    let columns = DesignColumns {
+        trait_column: Some("age".into()),
+        ..Default::default()
+    };
+    let sheet = SampleSheet::parse(
+        std::path::Path::new("sheet.tsv"),
+        sheet_text.as_bytes(),
+        "sample",
+    )
+    .unwrap();
+    let design =
+        StudyDesign::from_sheet(&sheet, riffle::stats::DesignKind::Trait, &columns).unwrap();
+    assert_eq!(design.trait_values, trait_values, "sheet order kept");
+    let (perms, seed) = (800, 21);
+    let classes = design.trait_classes();
+    let relabel = Relabelings::generate(&design.scheme(&classes), perms, seed);
+    // r of the observed values with the trait as unit i takes it from
+    // sources[i] (the textbook product-moment formula).
+    let r_of = |x: &[f64], sources: &[u32]| -> f64 {
+        let (a, b): (Vec<f64>, Vec<f64>) = x
+            .iter()
+            .zip(sources)
+            .filter(|(v, _)| !v.is_nan())
+            .map(|(&v, &s)| (v, trait_values[s as usize]))
+            .unzip();
+        let (ma, mb) = (mean(&a), mean(&b));
+        let sab: f64 = a.iter().zip(&b).map(|(p, q)| (p - ma) * (q - mb)).sum();
+        let saa: f64 = a.iter().map(|p| (p - ma) * (p - ma)).sum();
+        let sbb: f64 = b.iter().map(|q| (q - mb) * (q - mb)).sum();
+        sab / (saa * sbb).sqrt()
+    };
+    let identity: Vec<u32> = (0..big_n as u32).collect();
+    let run = |side: Side, threads: usize, chunk: usize, rows: &[Vec<f64>]| {
+        let dir = tempfile::tempdir().unwrap();
+        let mut o = options(dir.path());
+        o.test = TestKind::Pearson;
+        o.side = side;
+        o.perms = perms;
+        o.seed = seed;
+        o.threads = threads;
+        o.chunk_rows = Some(chunk);
+        o.pooled_null = true;
+        let summary = common::scan_with_sheet(
+            rows,
+            &sheet_text,
+            riffle::stats::DesignKind::Trait,
+            &columns,
+            &o,
+        );
+        let bytes = std::fs::read(&summary.results_path).unwrap();
+        (Table::read(&summary.results_path), bytes, dir)
+    };
+    for side in [Side::Both, Side::Less] {
+        let (table, bytes, _dir) = run(side, 2, 37, &rows);
+        let exceed = table.f64s("n_exceed");
+        let note = table.text("note");
+        let mut tested = 0;
+        for (f, x) in rows.iter().enumerate() {
+            if !note[f].is_empty() {
+                continue;
+            }
+            tested += 1;
+            // r is monotone in the kernel's statistic for a fixed row.
+            let obs = orient(side, r_of(x, &identity));
+            let count = (0..relabel.count)
+                .filter(|&b| {
+                    orient(side, r_of(x, relabel.source_row(b))) >= obs - 1e-9 * (1.0 + obs.abs())
+                })
+                .count();
+            assert_eq!(exceed[f], count as f64, "{side:?} feature {f}");
+        }
+        assert!(tested > 80, "{side:?}: {tested}");
+        let (_, single, _d) = run(side, 1, 5000, &rows);
+        assert!(single == bytes, "{side:?}: 1 vs 2 threads, chunk sizes");
+    }
+    let complete: Vec<Vec<f64>> = rows.iter().take(9).cloned().collect();
+    assert!(complete.iter().flatten().all(|v| !v.is_nan()));
+    let (alone, _, _d1) = run(Side::Both, 2, 37, &complete);
+    let (mixed, _, _d2) = run(Side::Both, 2, 37, &rows);
+    for column in ["statistic", "p_param", "p_perm", "n_exceed", "effect"] {
+        let (a, b) = (alone.f64s(column), mixed.f64s(column));
+        for (k, value) in a.iter().enumerate() {
+            assert_eq!(value.to_bits(), b[k].to_bits(), "{column} {k}");
+        }
+    }
 }

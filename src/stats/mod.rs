@@ -9,6 +9,7 @@
 
 pub mod masked;
 mod masked_paired;
+mod masked_trait;
 pub mod prepare;
 pub mod relabelled;
 

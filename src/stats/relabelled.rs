@@ -115,6 +115,14 @@ pub fn model_reference(spec: &TestSpec, raw: &[f64], labels: &[u8]) -> ModelRefe
         };
         return model_reference(&observed, &values, labels);
     }
+    if spec.supports_missing()
+        && spec.test.design() == DesignKind::Trait
+        && raw.iter().any(|v| v.is_nan())
+    {
+        return ModelReference::Correlation {
+            n: raw.iter().filter(|v| !v.is_nan()).count() as f64,
+        };
+    }
     if spec.supports_missing() && raw.iter().any(|v| v.is_nan()) {
         // The test was on the observed values: their sizes, ties and df.
         let (values, classes): (Vec<f64>, Vec<u8>) = raw

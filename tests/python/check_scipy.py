@@ -16,7 +16,8 @@ files, runs `riffle scan` for every test and side, and compares
   missing values (riffle's relabelings move every sample; a missing one
   drops out of whichever group it lands in); the same for one-way F and
   Kruskal-Wallis (f_oneway, kruskal) on 3 + 3 + 3 samples, and for paired
-  t and signed-rank (ttest_rel(nan_policy='omit'), wilcoxon) on 9 pairs.
+  t and signed-rank (ttest_rel(nan_policy='omit'), wilcoxon) on 9 pairs,
+  and for Pearson (pearsonr on the observed samples) on 7 samples.
 Exits 0 when everything agrees, 1 otherwise.
 """
 
@@ -379,6 +380,60 @@ def check_missing(folder):
         print(f"{'ok ' if ok else 'BAD'} missing {test:9} both    max|p_param - scipy| = {worst_param:.2e}"
               f"  max|p_perm - scipy| = {worst_perm:.2e}")
     failures += check_missing_pairs(folder, rng)
+    failures += check_missing_trait(folder, rng)
+    return failures
+
+
+def check_missing_trait(folder, rng):
+    """Pearson with missing values (7 samples, all 5040 pairings): p_param
+    as pearsonr on the observed samples, exact p_perm as permutation_test
+    (permutation_type='pairings') with a statistic that drops the missing
+    samples (a missing value stays missing whichever trait value it meets)."""
+    trait = np.array([3.1, 0.5, 2.2, 4.8, 1.0, 2.6, 1.7])
+    samples = [f"c{i}" for i in range(len(trait))]
+    rows = []
+    for k in range(6):
+        row = rng.normal(size=len(trait)) + 0.4 * k * trait
+        row[rng.choice(len(trait), size=1 + k % 2, replace=False)] = np.nan
+        rows.append(row)
+    tokens = ["NA", "", "NaN"]
+    lines = ["feature\t" + "\t".join(samples)]
+    for k, row in enumerate(rows):
+        cells = [tokens[(k + i) % 3] if np.isnan(v) else repr(float(v)) for i, v in enumerate(row)]
+        lines.append(f"c{k}\t" + "\t".join(cells))
+    matrix = folder / "tmissing.tsv"
+    matrix.write_text("\n".join(lines) + "\n")
+    sheet = folder / "tmissing-sheet.tsv"
+    sheet.write_text("sample\tage\n" + "".join(f"{s}\t{v!r}\n" for s, v in zip(samples, trait.tolist())))
+
+    def observed_r(x, y):
+        keep = ~np.isnan(x)
+        return stats.pearsonr(x[keep], y[keep]).statistic
+
+    failures = 0
+    for side, alt in [("both", "two-sided"), ("greater", "greater"), ("less", "less")]:
+        res = scan(matrix, sheet, folder / f"out-tmissing-{side}",
+                   ["--test", "pearson", "--trait", "age", "--side", side, "--perms", "10000"])
+        worst_param = worst_perm = 0.0
+        for r, row in zip(res, rows):
+            keep = ~np.isnan(row)
+            p_ref = stats.pearsonr(row[keep], trait[keep], alternative=alt).pvalue
+            if side == "both":
+                statistic, alternative = (lambda x, y: abs(observed_r(x, y))), "greater"
+            else:
+                statistic, alternative = observed_r, alt
+            perm = stats.permutation_test((row, trait), statistic, permutation_type="pairings",
+                                          vectorized=False, n_resamples=np.inf,
+                                          alternative=alternative).pvalue
+            worst_param = max(worst_param, abs(float(r["p_param"]) - p_ref),
+                              abs(float(r["statistic"]) - observed_r(row, trait)))
+            worst_perm = max(worst_perm, abs(float(r["p_perm"]) - perm))
+            if int(r["n_a"]) != int(keep.sum()):
+                worst_param = math.inf
+        ok = worst_param <= 1e-10 and worst_perm <= 1e-12
+        failures += not ok
+        print(f"{'ok ' if ok else 'BAD'} missing pearson     {side:7} max|p_param, r - scipy| = {worst_param:.2e}"
+              f"  max|p_perm - scipy| = {worst_perm:.2e}")
     return failures
 
 
