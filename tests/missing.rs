@@ -772,7 +772,9 @@ fn k_groups_with_missing_values_equal_brute_force() {
     }
 }
 
-/// Designs without masking say so for a feature with missing values.
+/// Designs without masking (Spearman: the trait's ranks among a feature's
+/// observed samples change with every relabelling) say so for a feature
+/// with missing values.
 #[test]
 fn unmasked_designs_name_the_reason() {
     let trait_values = [3.1, 0.5, 2.2, 4.8, 1.0, 2.6, 1.7, 0.9];
@@ -791,7 +793,7 @@ fn unmasked_designs_name_the_reason() {
     };
     let dir = tempfile::tempdir().unwrap();
     let mut o = options(dir.path());
-    o.test = TestKind::Pearson;
+    o.test = TestKind::Spearman;
     o.perms = 99;
     let summary = common::scan_with_sheet(
         &rows,
@@ -884,4 +886,625 @@ fn shards_with_missing_values_merge_to_the_single_run() {
         observed < 0.9 * 1500.0 * 16.0,
         "the matrix has missing values"
     );
+}
+
+// ---- Paired designs: a pair is missing when either of its samples is. ----
+
+/// Sample sheet of `m` pairs: samples a0.. in arm A, then b0.. in arm B;
+/// rows give the A values, then the B values, so d = B - A.
+fn pair_sheet(m: usize) -> String {
+    let mut text = String::from("sample\tarm\tpair\n");
+    for i in 0..m {
+        text.push_str(&format!("a{i}\tA\tp{i}\n"));
+    }
+    for i in 0..m {
+        text.push_str(&format!("b{i}\tB\tp{i}\n"));
+    }
+    text
+}
+
+fn scan_pairs(rows: &[Vec<f64>], o: &riffle::scan::ScanOptions) -> riffle::scan::ScanSummary {
+    let columns = riffle::design::DesignColumns {
+        group: Some("arm".into()),
+        levels: Some(vec!["A".into(), "B".into()]),
+        pair: Some("pair".into()),
+        ..Default::default()
+    };
+    common::scan_with_sheet(
+        rows,
+        &pair_sheet(rows[0].len() / 2),
+        riffle::stats::DesignKind::Paired,
+        &columns,
+        o,
+    )
+}
+
+/// Differences B - A of the pairs with both samples observed, with the
+/// index of their pair.
+fn observed_pairs(row: &[f64]) -> Vec<(usize, f64)> {
+    let m = row.len() / 2;
+    (0..m)
+        .filter(|&i| !row[i].is_nan() && !row[m + i].is_nan())
+        .map(|i| (i, row[m + i] - row[i]))
+        .collect()
+}
+
+/// Paired t of differences: mean over its standard error (Student 1908;
+/// common practice).
+fn paired_t_of(d: &[f64]) -> f64 {
+    let v = var(d);
+    mean(d) / (v / d.len() as f64).sqrt()
+}
+
+/// Wilcoxon signed-rank: zero differences dropped, mid-ranks of |d|
+/// (Wilcoxon 1945, zeros dropped as in Wilcoxon's own treatment; common
+/// practice). Returns W+ and the permutation z-score
+/// (W+ - sum(r) / 2) / (sqrt(sum r^2) / 2).
+fn signed_rank_of(d: &[f64]) -> (f64, f64) {
+    let nonzero: Vec<f64> = d.iter().copied().filter(|&v| v != 0.0).collect();
+    let rank = |v: f64| {
+        let below = nonzero.iter().filter(|y| y.abs() < v.abs()).count() as f64;
+        let equal = nonzero.iter().filter(|y| y.abs() == v.abs()).count() as f64;
+        below + (equal + 1.0) / 2.0
+    };
+    let ranks: Vec<f64> = nonzero.iter().map(|&v| rank(v)).collect();
+    let w_plus: f64 = nonzero
+        .iter()
+        .zip(&ranks)
+        .filter(|(v, _)| **v > 0.0)
+        .map(|(_, r)| r)
+        .sum();
+    let total: f64 = ranks.iter().sum();
+    let sd = ranks.iter().map(|r| r * r).sum::<f64>().sqrt() / 2.0;
+    let z = if sd > 0.0 {
+        (w_plus - total / 2.0) / sd
+    } else {
+        0.0
+    };
+    (w_plus, z)
+}
+
+/// Signed statistic of the observed differences of `row` with the pairs
+/// of `flips` (bit i: pair i) sign-flipped.
+fn flipped_statistic(test: TestKind, row: &[f64], flips: u32) -> f64 {
+    let d: Vec<f64> = observed_pairs(row)
+        .iter()
+        .map(|&(i, v)| if flips >> i & 1 == 1 { -v } else { v })
+        .collect();
+    match test {
+        TestKind::PairedT => paired_t_of(&d),
+        _ => signed_rank_of(&d).1,
+    }
+}
+
+/// Pairs of 10 with one to three samples missing (sometimes both of a
+/// pair), ties and zero differences, and two complete rows.
+fn small_pair_rows() -> Vec<Vec<f64>> {
+    let mut rng = TestRng::new(31);
+    let mut rows: Vec<Vec<f64>> = (0..8)
+        .map(|f| {
+            let mut row: Vec<f64> = (0..20)
+                .map(|i| rng.normal() + if i >= 10 { 0.3 * f as f64 } else { 0.0 })
+                .collect();
+            for j in 0..=(f % 3) {
+                row[(7 * f + 5 * j + 1) % 20] = f64::NAN;
+            }
+            row
+        })
+        .collect();
+    let mut tied: Vec<f64> = (0..20)
+        .map(|i| ((i * 7) % 5 + i / 10 * (i % 3)) as f64)
+        .collect();
+    tied[3] = f64::NAN;
+    tied[15] = f64::NAN;
+    rows.push(tied);
+    rows.push((0..20).map(|i| ((i * 3) % 7) as f64).collect());
+    rows.push((0..20).map(|_| rng.normal()).collect());
+    rows
+}
+
+/// Exact p over all 2^10 sign flips of every pair, by brute force over the
+/// observed pairs (common practice, no single source); the reported
+/// statistic and the observed pair count are those of the observed pairs.
+#[test]
+fn paired_exact_p_with_missing_pairs_equals_brute_force() {
+    let rows = small_pair_rows();
+    let dir = tempfile::tempdir().unwrap();
+    for test in [TestKind::PairedT, TestKind::SignedRank] {
+        for side in [Side::Both, Side::Greater, Side::Less] {
+            let mut o = options(dir.path());
+            o.test = test;
+            o.side = side;
+            o.perms = 5000;
+            o.min_observed = 2;
+            let summary = scan_pairs(&rows, &o);
+            assert!(summary.exact);
+            assert_eq!(summary.tested as usize, rows.len(), "{test:?}");
+            let table = Table::read(&summary.results_path);
+            let (p, stat, n_a) = (
+                table.f64s("p_perm"),
+                table.f64s("statistic"),
+                table.f64s("n_a"),
+            );
+            for (f, row) in rows.iter().enumerate() {
+                let d: Vec<f64> = observed_pairs(row).iter().map(|p| p.1).collect();
+                assert_eq!(n_a[f], d.len() as f64, "{f}");
+                let expected_stat = match test {
+                    TestKind::PairedT => paired_t_of(&d),
+                    _ => signed_rank_of(&d).0,
+                };
+                assert!(
+                    (stat[f] - expected_stat).abs() < 1e-9 * (1.0 + expected_stat.abs()),
+                    "{test:?} feature {f}: {} vs {expected_stat}",
+                    stat[f]
+                );
+                let t_obs = orient(side, flipped_statistic(test, row, 0));
+                let reached = (0..1u32 << 10)
+                    .filter(|&flips| {
+                        orient(side, flipped_statistic(test, row, flips))
+                            >= t_obs - 1e-9 * (1.0 + t_obs.abs())
+                    })
+                    .count();
+                let expected = reached as f64 / 1024.0;
+                assert!(
+                    (p[f] - expected).abs() < 1e-12,
+                    "{test:?} {side:?} feature {f}: riffle {} brute force {expected}",
+                    p[f]
+                );
+            }
+        }
+    }
+}
+
+/// Single-step and step-down maxT (Westfall & Young 1993) over complete and
+/// masked paired features, all 2^12 flips held in memory. The complete-data
+/// scale (riffle's documented choice): paired t as the flipped sum a
+/// complete feature of m pairs would need for the same t,
+/// S = sqrt(m (m - 1) t^2 / (m - 1 + t^2)); signed-rank as the permutation
+/// z-score (any positive multiple orders the same).
+#[test]
+fn paired_maxt_compares_masked_and_complete_features_on_one_scale() {
+    let m = 12usize;
+    let mut rng = TestRng::new(57);
+    let rows: Vec<Vec<f64>> = (0..40)
+        .map(|f| {
+            let shift = if f % 9 == 2 { 1.2 } else { 0.0 };
+            (0..2 * m)
+                .map(|i| {
+                    if f % 3 != 0 && rng.uniform() < 0.2 {
+                        f64::NAN
+                    } else {
+                        rng.normal() + if i >= m { shift } else { 0.0 }
+                    }
+                })
+                .collect()
+        })
+        .collect();
+    let dir = tempfile::tempdir().unwrap();
+    let mf = m as f64;
+    for test in [TestKind::PairedT, TestKind::SignedRank] {
+        let mut o = options(dir.path());
+        o.test = test;
+        o.perms = 10_000;
+        o.min_observed = 2;
+        o.chunk_rows = Some(13);
+        let summary = scan_pairs(&rows, &o);
+        assert!(summary.exact);
+        assert_eq!(summary.tested as usize, rows.len());
+        let table = Table::read(&summary.results_path);
+        let (p_maxt, p_single) = (table.f64s("p_maxt"), table.f64s("p_maxt_single"));
+        let scale = |t: f64| -> f64 {
+            match test {
+                TestKind::PairedT if t.is_infinite() => (mf * (mf - 1.0)).sqrt(),
+                TestKind::PairedT => (mf * (mf - 1.0) * t * t / (mf - 1.0 + t * t)).sqrt(),
+                _ => t.abs(),
+            }
+        };
+        let all = 1u32 << m;
+        let obs: Vec<f64> = rows
+            .iter()
+            .map(|x| scale(flipped_statistic(test, x, 0)))
+            .collect();
+        let null: Vec<Vec<f64>> = rows
+            .iter()
+            .map(|x| {
+                (0..all)
+                    .map(|b| scale(flipped_statistic(test, x, b)))
+                    .collect()
+            })
+            .collect();
+        let tol = 1e-9;
+        let denominator = all as f64;
+        let count = rows.len();
+        let column_max: Vec<f64> = (0..all as usize)
+            .map(|b| null.iter().map(|t| t[b]).fold(f64::NEG_INFINITY, f64::max))
+            .collect();
+        let mut p_tilde = vec![0.0; count];
+        for j in 0..count {
+            let single = column_max
+                .iter()
+                .filter(|&&c| c >= obs[j] * (1.0 - tol))
+                .count();
+            let expected = single as f64 / denominator;
+            assert!(
+                (p_single[j] - expected).abs() < 1e-15,
+                "{test:?} single-step {j}: riffle {} brute force {expected}",
+                p_single[j]
+            );
+            let reached = (0..all as usize)
+                .filter(|&b| {
+                    (0..count)
+                        .filter(|&k| obs[k] <= obs[j] * (1.0 + tol))
+                        .any(|k| null[k][b] >= obs[j] * (1.0 - tol))
+                })
+                .count();
+            p_tilde[j] = reached as f64 / denominator;
+        }
+        for j in 0..count {
+            let expected = (0..count)
+                .filter(|&k| obs[k] >= obs[j] * (1.0 - tol))
+                .map(|k| p_tilde[k])
+                .fold(0.0, f64::max);
+            assert!(
+                (p_maxt[j] - expected).abs() < 1e-15,
+                "{test:?} step-down {j}: riffle {} brute force {expected}",
+                p_maxt[j]
+            );
+        }
+    }
+}
+
+/// Paired rows with missing values: complete rows beside them keep every
+/// value they have alone, results do not depend on threads or chunk size,
+/// and `--min-observed` counts observed pairs.
+#[test]
+fn paired_masked_rows_are_deterministic_and_leave_complete_rows_unchanged() {
+    let m = 30usize;
+    let mut rng = TestRng::new(77);
+    let rows: Vec<Vec<f64>> = (0..600)
+        .map(|f| {
+            (0..2 * m)
+                .map(|i| {
+                    if f % 2 == 1 && rng.uniform() < 0.15 {
+                        f64::NAN
+                    } else {
+                        rng.normal() * (1.0 + (f % 5) as f64) + if i >= m { 0.4 } else { 0.0 }
+                    }
+                })
+                .collect()
+        })
+        .collect();
+    let complete: Vec<Vec<f64>> = rows.iter().step_by(2).cloned().collect();
+    for test in [TestKind::PairedT, TestKind::SignedRank] {
+        let mut outputs = Vec::new();
+        let mut last = None;
+        for (threads, chunk) in [(1, 5000), (2, 37), (2, 1000)] {
+            let dir = tempfile::tempdir().unwrap();
+            let mut o = options(dir.path());
+            o.test = test;
+            o.perms = 400;
+            o.threads = threads;
+            o.chunk_rows = Some(chunk);
+            o.pooled_null = true;
+            let summary = scan_pairs(&rows, &o);
+            assert!(summary.tested > 590, "{test:?}: {}", summary.tested);
+            outputs.push(std::fs::read(&summary.results_path).unwrap());
+            last = Some((Table::read(&summary.results_path), dir));
+        }
+        assert_eq!(outputs[0], outputs[1], "{test:?}: 1 vs 2 threads");
+        assert_eq!(outputs[1], outputs[2], "{test:?}: chunk sizes");
+        let (mixed, _keep) = last.unwrap();
+        let dir = tempfile::tempdir().unwrap();
+        let mut o = options(dir.path());
+        o.test = test;
+        o.perms = 400;
+        let alone = Table::read(&scan_pairs(&complete, &o).results_path);
+        for column in ["statistic", "p_param", "p_perm", "n_exceed", "effect"] {
+            let (a, b) = (alone.f64s(column), mixed.f64s(column));
+            for (k, value) in a.iter().enumerate() {
+                assert_eq!(value.to_bits(), b[2 * k].to_bits(), "{test:?} {column} {k}");
+            }
+        }
+        assert!(
+            mixed.f64s("n_a").iter().any(|&v| v < m as f64),
+            "some pairs are missing"
+        );
+    }
+    // Two observed pairs out of 30: untested under the default of three.
+    let mut sparse = rows[0].clone();
+    for v in sparse.iter_mut().skip(2).take(m - 2) {
+        *v = f64::NAN;
+    }
+    let dir = tempfile::tempdir().unwrap();
+    let mut o = options(dir.path());
+    o.test = TestKind::PairedT;
+    o.perms = 100;
+    let table = Table::read(&scan_pairs(&[rows[0].clone(), sparse], &o).results_path);
+    assert_eq!(table.text("note")[1], "too few observed values");
+    assert_eq!(table.f64s("n_a")[1], 2.0);
+    assert!(table.f64s("p_perm")[1].is_nan());
+    assert_eq!(table.text("note")[0], "");
+}
+
+// ---- Trait designs (Pearson): each feature correlates its observed
+// samples with their trait values. ----
+
+const TRAIT: [f64; 7] = [3.1, 0.5, 2.2, 4.8, 1.0, 2.6, 1.7];
+
+fn scan_trait(rows: &[Vec<f64>], o: &riffle::scan::ScanOptions) -> riffle::scan::ScanSummary {
+    let mut sheet = String::from("sample\tage\n");
+    for (i, t) in TRAIT.iter().enumerate() {
+        sheet.push_str(&format!("s{i}\t{t}\n"));
+    }
+    let columns = riffle::design::DesignColumns {
+        trait_column: Some("age".into()),
+        ..Default::default()
+    };
+    common::scan_with_sheet(rows, &sheet, riffle::stats::DesignKind::Trait, &columns, o)
+}
+
+/// Pearson r of the observed values of `x` with the trait values that
+/// `order` puts on their samples (sample i takes TRAIT[order[i]]); the
+/// textbook product-moment formula (common practice, no single source).
+fn observed_r(x: &[f64], order: &[usize]) -> f64 {
+    let (a, b): (Vec<f64>, Vec<f64>) = x
+        .iter()
+        .zip(order)
+        .filter(|(v, _)| !v.is_nan())
+        .map(|(&v, &k)| (v, TRAIT[k]))
+        .unzip();
+    let (ma, mb) = (mean(&a), mean(&b));
+    let sab: f64 = a.iter().zip(&b).map(|(p, q)| (p - ma) * (q - mb)).sum();
+    let saa: f64 = a.iter().map(|p| (p - ma) * (p - ma)).sum();
+    let sbb: f64 = b.iter().map(|q| (q - mb) * (q - mb)).sum();
+    sab / (saa * sbb).sqrt()
+}
+
+/// Every ordering of 0..n (common practice, no single source).
+fn orderings(n: usize) -> Vec<Vec<usize>> {
+    if n == 0 {
+        return vec![Vec::new()];
+    }
+    let mut out = Vec::new();
+    for rest in orderings(n - 1) {
+        for at in 0..n {
+            let mut o = rest.clone();
+            o.insert(at, n - 1);
+            out.push(o);
+        }
+    }
+    out
+}
+
+fn trait_rows() -> Vec<Vec<f64>> {
+    let mut rng = TestRng::new(17);
+    let mut rows: Vec<Vec<f64>> = (0..10)
+        .map(|f| {
+            let mut row: Vec<f64> = TRAIT
+                .iter()
+                .map(|t| rng.normal() + 0.4 * f as f64 * t)
+                .collect();
+            for j in 0..(f % 3) {
+                row[(3 * f + 2 * j) % 7] = f64::NAN;
+            }
+            row
+        })
+        .collect();
+    rows.push(vec![1.0, 2.0, f64::NAN, 1.0, 3.0, 2.0, 2.0]);
+    rows
+}
+
+/// Exact p over all 7! = 5040 orderings of the trait, by brute force over
+/// the observed samples; r and the observed count are those of the
+/// observed samples.
+#[test]
+fn pearson_exact_p_with_missing_values_equals_brute_force() {
+    let rows = trait_rows();
+    let all = orderings(7);
+    let identity: Vec<usize> = (0..7).collect();
+    let dir = tempfile::tempdir().unwrap();
+    for side in [Side::Both, Side::Greater, Side::Less] {
+        let mut o = options(dir.path());
+        o.test = TestKind::Pearson;
+        o.side = side;
+        o.perms = 10_000;
+        let summary = scan_trait(&rows, &o);
+        assert!(summary.exact);
+        assert_eq!(summary.tested as usize, rows.len());
+        let table = Table::read(&summary.results_path);
+        let (p, stat, n_a) = (
+            table.f64s("p_perm"),
+            table.f64s("statistic"),
+            table.f64s("n_a"),
+        );
+        for (f, row) in rows.iter().enumerate() {
+            let r = observed_r(row, &identity);
+            assert!(
+                (stat[f] - r).abs() < 1e-12,
+                "feature {f}: {} vs {r}",
+                stat[f]
+            );
+            assert_eq!(n_a[f], row.iter().filter(|v| !v.is_nan()).count() as f64);
+            let t_obs = orient(side, r);
+            let reached = all
+                .iter()
+                .filter(|order| orient(side, observed_r(row, order)) >= t_obs - 1e-9)
+                .count();
+            let expected = reached as f64 / all.len() as f64;
+            assert!(
+                (p[f] - expected).abs() < 1e-12,
+                "{side:?} feature {f}: riffle {} brute force {expected}",
+                p[f]
+            );
+        }
+    }
+}
+
+/// Single-step maxT over complete and masked Pearson features against all
+/// 5040 orderings held in memory; the complete-data scale (riffle's
+/// documented choice) is the r of all N samples with the same t as r on
+/// the n observed ones, r_eq^2 = t^2 / (N - 2 + t^2).
+#[test]
+fn pearson_maxt_compares_masked_and_complete_features_on_one_scale() {
+    let rows = trait_rows();
+    let all = orderings(7);
+    let big_n = 7.0;
+    let scale = |x: &[f64], order: &[usize]| -> f64 {
+        let n = x.iter().filter(|v| !v.is_nan()).count() as f64;
+        let r = observed_r(x, order);
+        let t2 = r * r * (n - 2.0) / (1.0 - r * r);
+        (t2 / (big_n - 2.0 + t2)).sqrt()
+    };
+    let dir = tempfile::tempdir().unwrap();
+    let mut o = options(dir.path());
+    o.test = TestKind::Pearson;
+    o.perms = 10_000;
+    o.chunk_rows = Some(4);
+    let table = Table::read(&scan_trait(&rows, &o).results_path);
+    let p_single = table.f64s("p_maxt_single");
+    let identity: Vec<usize> = (0..7).collect();
+    let column_max: Vec<f64> = all
+        .iter()
+        .map(|order| {
+            rows.iter()
+                .map(|x| scale(x, order))
+                .fold(f64::NEG_INFINITY, f64::max)
+        })
+        .collect();
+    for (j, x) in rows.iter().enumerate() {
+        let obs = scale(x, &identity);
+        let single = column_max.iter().filter(|&&c| c >= obs - 1e-9).count();
+        let expected = single as f64 / all.len() as f64;
+        assert!(
+            (p_single[j] - expected).abs() < 1e-12,
+            "single-step {j}: riffle {} brute force {expected}",
+            p_single[j]
+        );
+    }
+}
+
+/// Pearson on 40 samples with offsets, scales, ties and heavy missing
+/// shares: exceedance counts equal an all-f64 count of the textbook r over
+/// the same drawn relabelings (the kernel's f32 sums with their error
+/// band), results do not depend on threads or chunk size, and complete rows
+/// keep every value they have alone.
+#[test]
+fn pearson_masked_counts_equal_an_all_f64_count_and_are_deterministic() {
+    use riffle::design::{DesignColumns, SampleSheet, StudyDesign};
+    let big_n = 40usize;
+    let mut rng = TestRng::new(5);
+    let trait_values: Vec<f64> = (0..big_n).map(|_| 50.0 + 10.0 * rng.normal()).collect();
+    let mut sheet_text = String::from("sample\tage\n");
+    for (i, t) in trait_values.iter().enumerate() {
+        sheet_text.push_str(&format!("s{i}\t{t}\n"));
+    }
+    let mut rows: Vec<Vec<f64>> = (0..90)
+        .map(|f| {
+            let offset = [0.0, 1e4, -3e6][f % 3];
+            let scale = [1.0, 1e-2, 50.0][f / 3 % 3];
+            let slope = [0.0, 0.03, 0.1, 0.3][f % 4];
+            let missing = [0.0, 0.15, 0.4][f / 9 % 3];
+            trait_values
+                .iter()
+                .map(|t| {
+                    if rng.uniform() < missing {
+                        f64::NAN
+                    } else {
+                        offset + scale * (rng.normal() + slope * (t - 50.0))
+                    }
+                })
+                .collect()
+        })
+        .collect();
+    rows[10] = rows[4].clone();
+    for row in rows.iter_mut().skip(60).step_by(3) {
+        for v in row.iter_mut() {
+            *v = (*v * 0.5).round();
+        }
+    }
+    let columns = DesignColumns {
+        trait_column: Some("age".into()),
+        ..Default::default()
+    };
+    let sheet = SampleSheet::parse(
+        std::path::Path::new("sheet.tsv"),
+        sheet_text.as_bytes(),
+        "sample",
+    )
+    .unwrap();
+    let design =
+        StudyDesign::from_sheet(&sheet, riffle::stats::DesignKind::Trait, &columns).unwrap();
+    assert_eq!(design.trait_values, trait_values, "sheet order kept");
+    let (perms, seed) = (800, 21);
+    let classes = design.trait_classes();
+    let relabel = Relabelings::generate(&design.scheme(&classes), perms, seed);
+    // r of the observed values with the trait as unit i takes it from
+    // sources[i] (the textbook product-moment formula).
+    let r_of = |x: &[f64], sources: &[u32]| -> f64 {
+        let (a, b): (Vec<f64>, Vec<f64>) = x
+            .iter()
+            .zip(sources)
+            .filter(|(v, _)| !v.is_nan())
+            .map(|(&v, &s)| (v, trait_values[s as usize]))
+            .unzip();
+        let (ma, mb) = (mean(&a), mean(&b));
+        let sab: f64 = a.iter().zip(&b).map(|(p, q)| (p - ma) * (q - mb)).sum();
+        let saa: f64 = a.iter().map(|p| (p - ma) * (p - ma)).sum();
+        let sbb: f64 = b.iter().map(|q| (q - mb) * (q - mb)).sum();
+        sab / (saa * sbb).sqrt()
+    };
+    let identity: Vec<u32> = (0..big_n as u32).collect();
+    let run = |side: Side, threads: usize, chunk: usize, rows: &[Vec<f64>]| {
+        let dir = tempfile::tempdir().unwrap();
+        let mut o = options(dir.path());
+        o.test = TestKind::Pearson;
+        o.side = side;
+        o.perms = perms;
+        o.seed = seed;
+        o.threads = threads;
+        o.chunk_rows = Some(chunk);
+        o.pooled_null = true;
+        let summary = common::scan_with_sheet(
+            rows,
+            &sheet_text,
+            riffle::stats::DesignKind::Trait,
+            &columns,
+            &o,
+        );
+        let bytes = std::fs::read(&summary.results_path).unwrap();
+        (Table::read(&summary.results_path), bytes, dir)
+    };
+    for side in [Side::Both, Side::Less] {
+        let (table, bytes, _dir) = run(side, 2, 37, &rows);
+        let exceed = table.f64s("n_exceed");
+        let note = table.text("note");
+        let mut tested = 0;
+        for (f, x) in rows.iter().enumerate() {
+            if !note[f].is_empty() {
+                continue;
+            }
+            tested += 1;
+            // r is monotone in the kernel's statistic for a fixed row.
+            let obs = orient(side, r_of(x, &identity));
+            let count = (0..relabel.count)
+                .filter(|&b| {
+                    orient(side, r_of(x, relabel.source_row(b))) >= obs - 1e-9 * (1.0 + obs.abs())
+                })
+                .count();
+            assert_eq!(exceed[f], count as f64, "{side:?} feature {f}");
+        }
+        assert!(tested > 80, "{side:?}: {tested}");
+        let (_, single, _d) = run(side, 1, 5000, &rows);
+        assert!(single == bytes, "{side:?}: 1 vs 2 threads, chunk sizes");
+    }
+    let complete: Vec<Vec<f64>> = rows.iter().take(9).cloned().collect();
+    assert!(complete.iter().flatten().all(|v| !v.is_nan()));
+    let (alone, _, _d1) = run(Side::Both, 2, 37, &complete);
+    let (mixed, _, _d2) = run(Side::Both, 2, 37, &rows);
+    for column in ["statistic", "p_param", "p_perm", "n_exceed", "effect"] {
+        let (a, b) = (alone.f64s(column), mixed.f64s(column));
+        for (k, value) in a.iter().enumerate() {
+            assert_eq!(value.to_bits(), b[k].to_bits(), "{column} {k}");
+        }
+    }
 }

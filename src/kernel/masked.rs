@@ -47,6 +47,35 @@ impl Kernel {
                     };
                 }
             }
+            // `stats::masked_trait`: r from the observed samples' sums of
+            // z w, w and w^2 (`squares`); NaN (f64) unless the observed
+            // trait spread keeps over half its sum of squares.
+            TestKind::Pearson => {
+                for ((v, &c), &b) in sums.iter_mut().zip(squares).zip(masks) {
+                    let spread = c - b * b / n;
+                    let r = *v / ((n - 1.0) * spread).sqrt();
+                    let r2 = (r * r).min(1.0);
+                    let scale = (n - 2.0) / ((big_n - 2.0) * (1.0 - r2) + (n - 2.0) * r2);
+                    *v = if spread > 0.5 * c {
+                        (big_n - 1.0) * r * scale.sqrt()
+                    } else {
+                        f32::NAN
+                    };
+                }
+            }
+            // Sign flips keep the observed pairs: no counts needed (see
+            // `stats::masked_paired`; the denominator is at least
+            // n (n - 1)^2, so no entry is ill-conditioned).
+            TestKind::PairedT => {
+                let m = big_na;
+                let numerator = m * (m - 1.0) * (n - 1.0);
+                let base = (m - 1.0) * n * (n - 1.0);
+                for v in sums.iter_mut() {
+                    let s = *v;
+                    let denominator = (base + (n - m) * s * s).max(f32::MIN_POSITIVE);
+                    *v = s * (numerator / denominator).sqrt();
+                }
+            }
             TestKind::RankSum => {
                 for (v, &nb) in sums.iter_mut().zip(masks) {
                     let na = n - nb;
@@ -121,6 +150,19 @@ impl Kernel {
     pub(super) fn masked_band(&self, kernel_obs: f64, abs_sum: f64, observed: usize) -> (f64, f32) {
         let big_n = self.units() as f64;
         let n = observed.max(1) as f64;
+        if self.spec.test == TestKind::Pearson {
+            // r errs by at most 8 (N + 2) u: A = sum z w by 2 (N + 2) u
+            // sqrt((n - 1) C) and C - B^2 / n by 4 (N + 2) u C, with the
+            // spread above C / 2 (conditioning); r_eq's slope in r is at
+            // most (N - 2) / (n - 2); doubled for safety.
+            let e = 2.0 * (big_n - 1.0) * (big_n - 2.0) / (n - 2.0).max(1.0)
+                * 8.0
+                * (big_n + 2.0)
+                * F32_UNIT
+                + 1e-12;
+            let band = 2e-4 * (1.0 + kernel_obs.abs()) + e;
+            return (band, (e + 2e-4 * big_n) as f32);
+        }
         let delta = 2.0 * (big_n + 2.0) * F32_UNIT * abs_sum + 1e-12;
         let (na, nb) = (self.spec.sizes.n_a as f64, self.spec.sizes.n_b as f64);
         let spread = (na * nb / big_n).sqrt();
@@ -138,6 +180,11 @@ impl Kernel {
             // per unit of S1, and conditioning keeps each group's variance
             // above a hundredth of its sum of squares (a factor 10).
             TestKind::Welch => 10.0 * (n / (n - 1.0)).sqrt(),
+            // d S_eq / d S at its largest, S^2 = n (n - 1):
+            // sqrt(m (m - 1)^3 / (n (n - 1)^3)); doubled for safety.
+            TestKind::PairedT => {
+                2.0 * (big_n * (big_n - 1.0).powi(3) / (n * (n - 1.0).max(1.0).powi(3))).sqrt()
+            }
             _ => 10.0 * (big_n.sqrt() * big_n / n + 1.0),
         };
         if self.spec.test.is_k_group() {
@@ -146,10 +193,17 @@ impl Kernel {
             let k = self.spec.group_sizes.len() as f64;
             stretch *= 2.0 * k * k * big_n.sqrt();
         }
-        let band = 2e-4 * (1.0 + kernel_obs.abs()) + stretch * delta;
-        // Student and rank-sum statistics stay below N in size; Welch's
-        // relative term is already in the maxima' floors.
-        let slack = stretch * delta + 2e-4 * (1.0 + big_n);
+        // Paired t's finisher loses up to m / n ulps to cancellation in its
+        // denominator (terms of size m n^2 leave at least n (n - 1)^2).
+        let relative = if self.spec.test == TestKind::PairedT {
+            2e-4 + 16.0 * F32_UNIT * big_n / n
+        } else {
+            2e-4
+        };
+        let band = relative * (1.0 + kernel_obs.abs()) + stretch * delta;
+        // Student, rank-sum and paired statistics stay below N in size;
+        // Welch's relative term is already in the maxima' floors.
+        let slack = stretch * delta + relative * (1.0 + big_n);
         (band, slack as f32)
     }
 }

@@ -42,6 +42,10 @@ pub struct Kernel {
     relabel: Relabelings,
     /// `n x B` row-major: 1.0 where relabelling b puts sample i in group B.
     weights: Vec<f32>,
+    /// The squared weights (Pearson rows with missing values: the permuted
+    /// trait's sum of squares over their observed samples), built when
+    /// first needed.
+    squared_weights: std::sync::OnceLock<Vec<f32>>,
 }
 
 /// Per-feature outcome of a chunk.
@@ -108,6 +112,7 @@ impl Kernel {
             observed,
             relabel,
             weights,
+            squared_weights: std::sync::OnceLock::new(),
         }
     }
 
@@ -370,7 +375,8 @@ impl Kernel {
             buffers.observed.push(n - missing);
         }
         buffers.mask32.clear();
-        if buffers.observed.iter().any(|&m| m < n) {
+        if buffers.observed.iter().any(|&m| m < n) && self.spec.test.design() != DesignKind::Paired
+        {
             buffers.mask32.extend(
                 standardized
                     .iter()
@@ -419,10 +425,21 @@ impl Kernel {
                 );
                 let observed = &rows.observed[row0..row0 + rt];
                 let masked = observed.iter().any(|&m| m < n);
-                if masked {
+                // Sign flips keep the observed pairs: no mask GEMM.
+                let mask_gemm = masked && self.spec.test.design() != DesignKind::Paired;
+                if mask_gemm {
                     tiles.masks.resize(ROW_TILE * COL_TILE * r, 0.0);
                     let masks = &mut tiles.masks;
                     self.multiply(&rows.mask32[row0 * n..], rt, col0 * r, ct * r, masks);
+                }
+                let trait_masked = mask_gemm && self.spec.test.design() == DesignKind::Trait;
+                if trait_masked {
+                    tiles.mask_squares.resize(ROW_TILE * COL_TILE, 0.0);
+                    let squared = self
+                        .squared_weights
+                        .get_or_init(|| self.weights.iter().map(|w| w * w).collect());
+                    let (a, out) = (&rows.mask32[row0 * n..], &mut tiles.mask_squares);
+                    self.multiply_with(squared, a, rt, col0, ct, out);
                 }
                 let (sums, sq) = tiles.sums.split_at_mut(rt * ct * r);
                 for (i, &row_observed) in observed.iter().enumerate() {
@@ -430,10 +447,16 @@ impl Kernel {
                     if masked && row_observed < n {
                         let squares = if squares {
                             &sq[i * ct..(i + 1) * ct]
+                        } else if trait_masked {
+                            &tiles.mask_squares[i * ct..(i + 1) * ct]
                         } else {
                             &[]
                         };
-                        let masks = &tiles.masks[i * ct * r..(i + 1) * ct * r];
+                        let masks = if mask_gemm {
+                            &tiles.masks[i * ct * r..(i + 1) * ct * r]
+                        } else {
+                            &[]
+                        };
                         self.masked_tile(wide, squares, masks, row_observed);
                     } else if squares {
                         self.welch_tile(wide, &sq[i * ct..(i + 1) * ct]);
@@ -505,7 +528,21 @@ impl Kernel {
     /// `out = a (rows x n) * weights[:, col0 .. col0 + cols]` in f32, where
     /// columns count weight columns (relabelings times width).
     fn multiply(&self, a: &[f32], rows: usize, col0: usize, cols: usize, out: &mut [f32]) {
+        self.multiply_with(&self.weights, a, rows, col0, cols, out);
+    }
+
+    /// `multiply` against other weights of the same shape.
+    fn multiply_with(
+        &self,
+        weights: &[f32],
+        a: &[f32],
+        rows: usize,
+        col0: usize,
+        cols: usize,
+        out: &mut [f32],
+    ) {
         let n = self.units();
+        assert!(weights.len() == self.weights.len());
         let total = self.relabel.count * self.spec.width();
         // SAFETY: the slices cover rows x n, n x cols (at stride total) and
         // rows x cols elements with the strides given.
@@ -518,7 +555,7 @@ impl Kernel {
                 a.as_ptr(),
                 n as isize,
                 1,
-                self.weights.as_ptr().add(col0),
+                weights.as_ptr().add(col0),
                 total as isize,
                 1,
                 0.0,
@@ -676,6 +713,8 @@ struct TileBuffers {
     /// One GEMM tile: sums (and, stacked below them, sums of squares).
     sums: Vec<f32>,
     masks: Vec<f32>,
+    /// Masks against the squared weights (Pearson).
+    mask_squares: Vec<f32>,
 }
 
 struct RowsView<'a> {

@@ -35,7 +35,7 @@ impl TestSpec {
     /// Whether features with missing values are tested on their observed
     /// samples (otherwise they are reported untested, `missing values`).
     pub fn supports_missing(&self) -> bool {
-        self.model.is_none() && self.test.design() == DesignKind::Groups
+        self.model.is_none() && self.test != TestKind::Spearman
     }
 
     /// A row with NaN: the test on the observed values, with `z` the
@@ -49,6 +49,12 @@ impl TestSpec {
     ) -> Prepared {
         if self.test.is_k_group() {
             return self.prepare_masked_k_groups(raw, labels, z, scratch);
+        }
+        if self.test.design() == DesignKind::Paired {
+            return self.prepare_masked_paired(raw, z, scratch);
+        }
+        if self.test.design() == DesignKind::Trait {
+            return self.prepare_masked_trait(raw, z, scratch);
         }
         let mut values = std::mem::take(&mut scratch.observed_raw);
         let mut classes = std::mem::take(&mut scratch.observed_labels);
@@ -175,14 +181,20 @@ impl TestSpec {
     }
 
     /// Kernel statistic of a standardized row with NaN where missing, under
-    /// a relabelling (group tests), in f64.
+    /// a relabelling (group, paired and Pearson tests), in f64.
     pub fn masked_kernel_stat_with(&self, z: &[f64], assignment: Assignment<'_>) -> f64 {
         match assignment {
+            Assignment::Flips(flips) => self.masked_paired_stat(z, Some(flips)),
+            Assignment::Observed(_) if self.test.design() == DesignKind::Paired => {
+                self.masked_paired_stat(z, None)
+            }
+            Assignment::Sources(sources) => self.masked_trait_stat(z, Some(sources)),
+            Assignment::Observed(_) if self.test.design() == DesignKind::Trait => {
+                self.masked_trait_stat(z, None)
+            }
             Assignment::Classes(classes) | Assignment::Observed(classes) => {
                 self.masked_kernel_stat(z, classes)
             }
-            // Only group tests take missing values (`supports_missing`).
-            _ => f64::NAN,
         }
     }
 

@@ -8,6 +8,8 @@
 //! mean difference and rank-sum, and the Welch t itself for Welch.
 
 pub mod masked;
+mod masked_paired;
+mod masked_trait;
 pub mod prepare;
 pub mod relabelled;
 

@@ -593,7 +593,12 @@ impl TestSpec {
 
     /// Paired t or signed-rank on the within-pair differences B minus A
     /// (raw holds the A samples of all pairs, then their B samples).
-    fn prepare_paired(&self, raw: &[f64], z: &mut [f64], scratch: &mut PrepScratch) -> Prepared {
+    pub(super) fn prepare_paired(
+        &self,
+        raw: &[f64],
+        z: &mut [f64],
+        scratch: &mut PrepScratch,
+    ) -> Prepared {
         let m = self.sizes.n_a;
         let (a, b) = raw.split_at(m);
         scratch.diffs.clear();

@@ -93,6 +93,36 @@ pub fn model_reference(spec: &TestSpec, raw: &[f64], labels: &[u8]) -> ModelRefe
         }
         return ModelReference::StudentT { df: model.df };
     }
+    if spec.supports_missing()
+        && spec.test.design() == DesignKind::Paired
+        && raw.iter().any(|v| v.is_nan())
+    {
+        // The test was on the observed pairs.
+        let m = spec.sizes.n_a;
+        let kept: Vec<usize> = (0..m)
+            .filter(|&i| !raw[i].is_nan() && !raw[m + i].is_nan())
+            .collect();
+        let values: Vec<f64> = kept
+            .iter()
+            .chain(&kept)
+            .enumerate()
+            .map(|(j, &i)| if j < kept.len() { raw[i] } else { raw[m + i] })
+            .collect();
+        let mut observed = spec.clone();
+        observed.sizes = Sizes {
+            n_a: kept.len(),
+            n_b: kept.len(),
+        };
+        return model_reference(&observed, &values, labels);
+    }
+    if spec.supports_missing()
+        && spec.test.design() == DesignKind::Trait
+        && raw.iter().any(|v| v.is_nan())
+    {
+        return ModelReference::Correlation {
+            n: raw.iter().filter(|v| !v.is_nan()).count() as f64,
+        };
+    }
     if spec.supports_missing() && raw.iter().any(|v| v.is_nan()) {
         // The test was on the observed values: their sizes, ties and df.
         let (values, classes): (Vec<f64>, Vec<u8>) = raw

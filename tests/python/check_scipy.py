@@ -15,7 +15,9 @@ files, runs `riffle scan` for every test and side, and compares
   all 252 splits of the ten samples with a statistic that drops the
   missing values (riffle's relabelings move every sample; a missing one
   drops out of whichever group it lands in); the same for one-way F and
-  Kruskal-Wallis (f_oneway, kruskal) on 3 + 3 + 3 samples.
+  Kruskal-Wallis (f_oneway, kruskal) on 3 + 3 + 3 samples, and for paired
+  t and signed-rank (ttest_rel(nan_policy='omit'), wilcoxon) on 9 pairs,
+  and for Pearson (pearsonr on the observed samples) on 7 samples.
 Exits 0 when everything agrees, 1 otherwise.
 """
 
@@ -377,6 +379,143 @@ def check_missing(folder):
         failures += not ok
         print(f"{'ok ' if ok else 'BAD'} missing {test:9} both    max|p_param - scipy| = {worst_param:.2e}"
               f"  max|p_perm - scipy| = {worst_perm:.2e}")
+    failures += check_missing_pairs(folder, rng)
+    failures += check_missing_trait(folder, rng)
+    return failures
+
+
+def check_missing_trait(folder, rng):
+    """Pearson with missing values (7 samples, all 5040 pairings): p_param
+    as pearsonr on the observed samples, exact p_perm as permutation_test
+    (permutation_type='pairings') with a statistic that drops the missing
+    samples (a missing value stays missing whichever trait value it meets)."""
+    trait = np.array([3.1, 0.5, 2.2, 4.8, 1.0, 2.6, 1.7])
+    samples = [f"c{i}" for i in range(len(trait))]
+    rows = []
+    for k in range(6):
+        row = rng.normal(size=len(trait)) + 0.4 * k * trait
+        row[rng.choice(len(trait), size=1 + k % 2, replace=False)] = np.nan
+        rows.append(row)
+    tokens = ["NA", "", "NaN"]
+    lines = ["feature\t" + "\t".join(samples)]
+    for k, row in enumerate(rows):
+        cells = [tokens[(k + i) % 3] if np.isnan(v) else repr(float(v)) for i, v in enumerate(row)]
+        lines.append(f"c{k}\t" + "\t".join(cells))
+    matrix = folder / "tmissing.tsv"
+    matrix.write_text("\n".join(lines) + "\n")
+    sheet = folder / "tmissing-sheet.tsv"
+    sheet.write_text("sample\tage\n" + "".join(f"{s}\t{v!r}\n" for s, v in zip(samples, trait.tolist())))
+
+    def observed_r(x, y, axis=-1):
+        # Product-moment r over the samples where x is observed (vectorized
+        # over resamples, so that all 5040 pairings take a second).
+        x, y = np.broadcast_arrays(x, y)
+        keep = ~np.isnan(x)
+        n = keep.sum(axis=axis, keepdims=True)
+        mx = np.where(keep, x, 0.0).sum(axis=axis, keepdims=True) / n
+        my = np.where(keep, y, 0.0).sum(axis=axis, keepdims=True) / n
+        dx, dy = np.where(keep, x - mx, 0.0), np.where(keep, y - my, 0.0)
+        return (dx * dy).sum(axis=axis) / np.sqrt((dx * dx).sum(axis=axis) * (dy * dy).sum(axis=axis))
+
+    failures = 0
+    for side, alt in [("both", "two-sided"), ("greater", "greater"), ("less", "less")]:
+        res = scan(matrix, sheet, folder / f"out-tmissing-{side}",
+                   ["--test", "pearson", "--trait", "age", "--side", side, "--perms", "10000"])
+        worst_param = worst_perm = 0.0
+        for r, row in zip(res, rows):
+            keep = ~np.isnan(row)
+            p_ref = stats.pearsonr(row[keep], trait[keep], alternative=alt).pvalue
+            if side == "both":
+                statistic, alternative = (lambda x, axis=-1: np.abs(observed_r(x, trait, axis))), "greater"
+            else:
+                statistic, alternative = (lambda x, axis=-1: observed_r(x, trait, axis)), alt
+            # One sample with "pairings": all 7! orders of the feature's
+            # values against the fixed trait (its NaN move with them).
+            perm = stats.permutation_test((row,), statistic, permutation_type="pairings",
+                                          vectorized=True, n_resamples=np.inf,
+                                          alternative=alternative).pvalue
+            worst_param = max(worst_param, abs(float(r["p_param"]) - p_ref),
+                              abs(float(r["statistic"]) - stats.pearsonr(row[keep], trait[keep]).statistic))
+            worst_perm = max(worst_perm, abs(float(r["p_perm"]) - perm))
+            if int(r["n_a"]) != int(keep.sum()):
+                worst_param = math.inf
+        ok = worst_param <= 1e-10 and worst_perm <= 1e-12
+        failures += not ok
+        print(f"{'ok ' if ok else 'BAD'} missing pearson     {side:7} max|p_param, r - scipy| = {worst_param:.2e}"
+              f"  max|p_perm - scipy| = {worst_perm:.2e}")
+    return failures
+
+
+def check_missing_pairs(folder, rng):
+    """Paired tests with missing values (9 pairs, 512 sign flips): a pair
+    is missing when either sample is; p_param as ttest_rel(nan_policy='omit')
+    and wilcoxon on the observed differences, exact p_perm as
+    permutation_test over all flips of all pairs with a statistic that drops
+    the missing pairs (a flip swaps a pair's samples, so it stays missing)."""
+    m = 9
+    samples = [f"pre{i}" for i in range(m)] + [f"post{i}" for i in range(m)]
+    rows = []
+    for k in range(7):
+        base = rng.normal(size=m)
+        row = np.r_[base, base + rng.normal(size=m) * 0.7 + 0.3 * k]
+        row[rng.choice(2 * m, size=1 + k % 3, replace=False)] = np.nan
+        rows.append(row)
+    tied = np.r_[np.arange(m, dtype=float), np.arange(m, dtype=float) + np.array([1, -1, 2, 0, 1, 3, -2, 1, 1.0])]
+    tied[[2, m + 6]] = np.nan
+    rows.append(tied)
+    tokens = ["NA", "", "NaN"]
+    lines = ["feature\t" + "\t".join(samples)]
+    for k, row in enumerate(rows):
+        cells = [tokens[(k + i) % 3] if np.isnan(v) else repr(float(v)) for i, v in enumerate(row)]
+        lines.append(f"p{k}\t" + "\t".join(cells))
+    matrix = folder / "pmissing.tsv"
+    matrix.write_text("\n".join(lines) + "\n")
+    sheet = folder / "pmissing-sheet.tsv"
+    sheet.write_text("sample\ttime\tsubject\n" + "".join(
+        f"{s}\t{'pre' if i < m else 'post'}\tsubj{i % m}\n" for i, s in enumerate(samples)))
+
+    def signed_rank_sum(d):
+        # W+ - W- over the nonzero differences (zeros dropped before ranking).
+        d = d[d != 0]
+        return float(np.sum(np.sign(d) * stats.rankdata(np.abs(d)))) if len(d) else 0.0
+
+    failures = 0
+    for test in ["paired-t", "signed-rank"]:
+        for side, alt in [("both", "two-sided"), ("greater", "greater"), ("less", "less")]:
+            res = scan(matrix, sheet, folder / f"out-pmissing-{test}-{side}",
+                       ["--test", test, "--group", "time", "--levels", "pre,post", "--pair", "subject",
+                        "--side", side, "--perms", "1000", "--min-observed", "2"])
+            worst_param = worst_perm = 0.0
+            for r, row in zip(res, rows):
+                pre, post = row[:m], row[m:]
+                kept = ~np.isnan(pre) & ~np.isnan(post)
+                d = post[kept] - pre[kept]
+                if test == "paired-t":
+                    p_ref = stats.ttest_rel(post, pre, nan_policy="omit", alternative=alt).pvalue
+
+                    def stat(x, y):
+                        return stats.ttest_rel(x, y, nan_policy="omit").statistic
+                else:
+                    p_ref = stats.wilcoxon(d, alternative=alt, method="approx").pvalue
+
+                    def stat(x, y):
+                        keep = ~np.isnan(x) & ~np.isnan(y)
+                        return signed_rank_sum(x[keep] - y[keep])
+                if side == "both":
+                    statistic, alternative = (lambda x, y, s=stat: abs(s(x, y))), "greater"
+                else:
+                    statistic, alternative = stat, alt
+                perm = stats.permutation_test((post, pre), statistic, permutation_type="samples",
+                                              vectorized=False, n_resamples=np.inf,
+                                              alternative=alternative).pvalue
+                worst_param = max(worst_param, abs(float(r["p_param"]) - p_ref))
+                worst_perm = max(worst_perm, abs(float(r["p_perm"]) - perm))
+                if int(r["n_a"]) != int(kept.sum()):
+                    worst_param = math.inf
+            ok = worst_param <= 1e-10 and worst_perm <= 1e-12
+            failures += not ok
+            print(f"{'ok ' if ok else 'BAD'} missing {test:11} {side:7} max|p_param - scipy| = {worst_param:.2e}"
+                  f"  max|p_perm - scipy| = {worst_perm:.2e}")
     return failures
 
 
