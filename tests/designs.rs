@@ -446,6 +446,34 @@ fn least_squares(columns: &[Vec<f64>], y: &[f64]) -> (Vec<f64>, Vec<Vec<f64>>) {
     (beta, inverse)
 }
 
+/// Fitted values of the least-squares fit of y on `columns`.
+fn fitted(columns: &[Vec<f64>], y: &[f64]) -> Vec<f64> {
+    let (beta, _) = least_squares(columns, y);
+    (0..y.len())
+        .map(|i| (0..columns.len()).map(|r| beta[r] * columns[r][i]).sum())
+        .collect()
+}
+
+/// Freedman–Lane by brute force: `statistic` of y* = P e + H_Z y for every
+/// permutation P of the residuals e of the nuisance fit (Winkler et al.
+/// 2014, NeuroImage 92).
+fn freedman_lane_null(
+    nuisance: &[Vec<f64>],
+    y: &[f64],
+    statistic: impl Fn(&[f64]) -> f64,
+) -> Vec<f64> {
+    let fit = fitted(nuisance, y);
+    let resid: Vec<f64> = y.iter().zip(&fit).map(|(a, b)| a - b).collect();
+    let positions: Vec<usize> = (0..y.len()).collect();
+    arrangements(&positions)
+        .iter()
+        .map(|perm| {
+            let y_star: Vec<f64> = (0..y.len()).map(|i| resid[perm[i]] + fit[i]).collect();
+            statistic(&y_star)
+        })
+        .collect()
+}
+
 fn covariate_sheet(classes: &[usize], age: &[f64], site: &[&str]) -> String {
     let mut text = String::from("sample\tgroup\tage\tsite\n");
     for i in 0..classes.len() {
@@ -522,21 +550,7 @@ fn freedman_lane_exact_enumeration_and_ols_agree() {
             t[f]
         );
         assert!((p_param[f] - 2.0 * student.sf(t_obs.abs())).abs() < 1e-9);
-        // Residuals and fitted values under the nuisance model.
-        // Fitted values of the nuisance model.
-        let (gamma, _) = least_squares(&nuisance, y);
-        let fitted: Vec<f64> = (0..7)
-            .map(|i| (0..nuisance.len()).map(|r| gamma[r] * nuisance[r][i]).sum())
-            .collect();
-        let resid: Vec<f64> = y.iter().zip(&fitted).map(|(a, b)| a - b).collect();
-        let positions: Vec<usize> = (0..7).collect();
-        let all: Vec<f64> = arrangements(&positions)
-            .iter()
-            .map(|perm| {
-                let y_star: Vec<f64> = (0..7).map(|i| resid[perm[i]] + fitted[i]).collect();
-                ols_t(&full, &y_star, 0).1.abs()
-            })
-            .collect();
+        let all = freedman_lane_null(&nuisance, y, |y_star| ols_t(&full, y_star, 0).1.abs());
         let expected = exact_p(t_obs.abs(), &all);
         assert!(
             (p_perm[f] - expected).abs() < 1e-12,
@@ -593,13 +607,8 @@ fn freedman_lane_is_calibrated_with_a_confounding_covariate() {
 
 /// Residual sum of squares of the least-squares fit of y on `columns`.
 fn rss(columns: &[Vec<f64>], y: &[f64]) -> f64 {
-    let (beta, _) = least_squares(columns, y);
-    (0..y.len())
-        .map(|i| {
-            let fit: f64 = (0..columns.len()).map(|r| beta[r] * columns[r][i]).sum();
-            (y[i] - fit) * (y[i] - fit)
-        })
-        .sum()
+    let fit = fitted(columns, y);
+    y.iter().zip(&fit).map(|(a, b)| (a - b) * (a - b)).sum()
 }
 
 /// k groups with a covariate (Freedman–Lane for the F of several effect
@@ -674,19 +683,7 @@ fn freedman_lane_k_groups_exact_enumeration_and_ols_agree() {
         assert!((p_param[f] - reference.sf(f_obs)).abs() < 1e-9);
         let (reduced, complete) = (rss(&nuisance, y), rss(&full, y));
         assert!((effect[f] - (reduced - complete) / reduced).abs() < 1e-9);
-        let (gamma, _) = least_squares(&nuisance, y);
-        let fitted: Vec<f64> = (0..7)
-            .map(|i| (0..nuisance.len()).map(|r| gamma[r] * nuisance[r][i]).sum())
-            .collect();
-        let resid: Vec<f64> = y.iter().zip(&fitted).map(|(a, b)| a - b).collect();
-        let positions: Vec<usize> = (0..7).collect();
-        let all: Vec<f64> = arrangements(&positions)
-            .iter()
-            .map(|perm| {
-                let y_star: Vec<f64> = (0..7).map(|i| resid[perm[i]] + fitted[i]).collect();
-                f_of(&y_star)
-            })
-            .collect();
+        let all = freedman_lane_null(&nuisance, y, f_of);
         let expected = exact_p(f_obs, &all);
         assert!(
             (p_perm[f] - expected).abs() < 1e-12,

@@ -9,7 +9,7 @@ mod common;
 use std::path::{Path, PathBuf};
 use std::sync::atomic::AtomicBool;
 
-use common::{options, scan_rows, Table, TestRng};
+use common::{options, scan_rows, student_t, Table, TestRng};
 use riffle::design::Relabelings;
 use riffle::multitest::{adjust, AdjustOptions, Method, SlicePValues};
 use riffle::output::TableFormat;
@@ -38,26 +38,6 @@ fn study(
         })
         .collect();
     (rows, labels)
-}
-
-/// Pooled-variance two-sample t of B minus A, from its textbook definition.
-fn student_t(x: &[f64], labels: &[u8]) -> f64 {
-    let pick = |g: u8| -> Vec<f64> {
-        x.iter()
-            .zip(labels)
-            .filter(|(_, &l)| l == g)
-            .map(|(v, _)| *v)
-            .collect()
-    };
-    let (a, b) = (pick(0), pick(1));
-    let mean = |v: &[f64]| v.iter().sum::<f64>() / v.len() as f64;
-    let ss = |v: &[f64]| {
-        let m = mean(v);
-        v.iter().map(|x| (x - m) * (x - m)).sum::<f64>()
-    };
-    let (na, nb) = (a.len() as f64, b.len() as f64);
-    let pooled = (ss(&a) + ss(&b)) / (na + nb - 2.0);
-    (mean(&b) - mean(&a)) / (pooled * (1.0 / na + 1.0 / nb)).sqrt()
 }
 
 /// Plain Benjamini & Hochberg (1995, JRSS-B 57, 289-300) step-up q-values:

@@ -4,7 +4,7 @@
 
 mod common;
 
-use common::{options, scan_rows, Table, TestRng};
+use common::{mean, options, scan_rows, split_groups, student_t, sum_of_squares, Table, TestRng};
 use riffle::scan::MaxtMode;
 use riffle::stats::TestKind;
 use statrs::distribution::{ContinuousCDF, StudentsT};
@@ -22,24 +22,8 @@ fn labels() -> Vec<u8> {
 /// the raw values, with statrs' t distribution (a general-purpose
 /// reference library), independently of riffle's kernel.
 fn student_p(row: &[f64], labels: &[u8]) -> f64 {
-    let pick = |g: u8| -> Vec<f64> {
-        row.iter()
-            .zip(labels)
-            .filter(|(_, &l)| l == g)
-            .map(|(v, _)| *v)
-            .collect()
-    };
-    let (a, b) = (pick(0), pick(1));
-    let mean = |v: &[f64]| v.iter().sum::<f64>() / v.len() as f64;
-    let ss = |v: &[f64]| {
-        let m = mean(v);
-        v.iter().map(|x| (x - m) * (x - m)).sum::<f64>()
-    };
-    let (na, nb) = (a.len() as f64, b.len() as f64);
-    let pooled = (ss(&a) + ss(&b)) / (na + nb - 2.0);
-    let t = (mean(&b) - mean(&a)) / (pooled * (1.0 / na + 1.0 / nb)).sqrt();
-    let dist = StudentsT::new(0.0, 1.0, na + nb - 2.0).unwrap();
-    2.0 * dist.sf(t.abs())
+    let dist = StudentsT::new(0.0, 1.0, row.len() as f64 - 2.0).unwrap();
+    2.0 * dist.sf(student_t(row, labels).abs())
 }
 
 /// Normal rows: `strong` features with a shift drawn so that their t
@@ -366,19 +350,8 @@ fn measure_tail_accuracy() {
 /// Welch t and its two-sided p-value (Welch–Satterthwaite df), from the
 /// textbook formulas on the raw values, with statrs' t distribution.
 fn welch_p(row: &[f64], labels: &[u8]) -> f64 {
-    let pick = |g: u8| -> Vec<f64> {
-        row.iter()
-            .zip(labels)
-            .filter(|(_, &l)| l == g)
-            .map(|(v, _)| *v)
-            .collect()
-    };
-    let (a, b) = (pick(0), pick(1));
-    let mean = |v: &[f64]| v.iter().sum::<f64>() / v.len() as f64;
-    let var = |v: &[f64]| {
-        let m = mean(v);
-        v.iter().map(|x| (x - m) * (x - m)).sum::<f64>() / (v.len() as f64 - 1.0)
-    };
+    let (a, b) = split_groups(row, labels);
+    let var = |v: &[f64]| sum_of_squares(v) / (v.len() as f64 - 1.0);
     let (va, vb) = (var(&a) / a.len() as f64, var(&b) / b.len() as f64);
     let t = (mean(&b) - mean(&a)) / (va + vb).sqrt();
     let df =

@@ -94,15 +94,7 @@ impl TestSpec {
                     p
                 }
                 Ok(core) => {
-                    let mut k = 0;
-                    for (zi, &v) in z.iter_mut().zip(raw) {
-                        if v.is_nan() {
-                            *zi = f64::NAN;
-                        } else {
-                            *zi = observed_z[k];
-                            k += 1;
-                        }
-                    }
+                    scatter_observed(raw, &observed_z, z);
                     Prepared {
                         status: Status::Tested,
                         effect: core.effect,
@@ -154,15 +146,7 @@ impl TestSpec {
             spec.group_sizes = counts;
             let p = spec.prepare_k_groups(&values, &classes, &mut observed_z, scratch);
             if p.status == Status::Tested {
-                let mut k = 0;
-                for (zi, &v) in z.iter_mut().zip(raw) {
-                    if v.is_nan() {
-                        *zi = f64::NAN;
-                    } else {
-                        *zi = observed_z[k];
-                        k += 1;
-                    }
-                }
+                scatter_observed(raw, &observed_z, z);
                 Prepared {
                     kernel_obs: self.masked_kernel_stat(z, labels),
                     ..p
@@ -316,5 +300,19 @@ impl TestSpec {
         let u = (big_n - 1.0) * (n - 2.0) * between / denominator;
         let spread = self.complete_spread();
         (u.max(0.0)).sqrt() * spread * s1.signum()
+    }
+}
+
+/// Spreads the standardized observed values back over the row: `z[i]` is
+/// the next of `observed` where `raw[i]` is observed, NaN where missing
+/// (so later stages still know the mask).
+pub(super) fn scatter_observed(raw: &[f64], observed: &[f64], z: &mut [f64]) {
+    let mut next = observed.iter();
+    for (zi, &v) in z.iter_mut().zip(raw) {
+        *zi = if v.is_nan() {
+            f64::NAN
+        } else {
+            next.next().copied().unwrap_or(f64::NAN)
+        };
     }
 }

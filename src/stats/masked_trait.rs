@@ -41,15 +41,7 @@ impl TestSpec {
         } else {
             observed_z.resize(n, 0.0);
             let abs_sum = super::prepare::standardize(&values, &mut observed_z);
-            let mut k = 0;
-            for (zi, &v) in z.iter_mut().zip(raw) {
-                if v.is_nan() {
-                    *zi = f64::NAN;
-                } else {
-                    *zi = observed_z[k];
-                    k += 1;
-                }
-            }
+            super::masked::scatter_observed(raw, &observed_z, z);
             match self.masked_trait_r(z, None) {
                 None => Prepared::untested(Status::Constant, f64::NAN),
                 Some(r) => {

@@ -146,3 +146,34 @@ pub fn riffle(args: &[&str]) -> std::process::Output {
         .output()
         .expect("run riffle")
 }
+
+/// The values of group 0 and of group 1 of a row.
+pub fn split_groups(row: &[f64], labels: &[u8]) -> (Vec<f64>, Vec<f64>) {
+    let pick = |g: u8| -> Vec<f64> {
+        row.iter()
+            .zip(labels)
+            .filter(|(_, &l)| l == g)
+            .map(|(v, _)| *v)
+            .collect()
+    };
+    (pick(0), pick(1))
+}
+
+pub fn mean(v: &[f64]) -> f64 {
+    v.iter().sum::<f64>() / v.len() as f64
+}
+
+/// Sum of squared deviations from the mean.
+pub fn sum_of_squares(v: &[f64]) -> f64 {
+    let m = mean(v);
+    v.iter().map(|x| (x - m) * (x - m)).sum()
+}
+
+/// Pooled-variance two-sample t of group 1 minus group 0, from its
+/// textbook definition (Student 1908).
+pub fn student_t(row: &[f64], labels: &[u8]) -> f64 {
+    let (a, b) = split_groups(row, labels);
+    let (na, nb) = (a.len() as f64, b.len() as f64);
+    let pooled = (sum_of_squares(&a) + sum_of_squares(&b)) / (na + nb - 2.0);
+    (mean(&b) - mean(&a)) / (pooled * (1.0 / na + 1.0 / nb)).sqrt()
+}
