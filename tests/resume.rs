@@ -77,14 +77,32 @@ fn kill_and_resume(extra: &[&str], seed: u64) {
     let out = dir.path().join("interrupted");
     let mut rng = TestRng::new(seed);
     let mut resumed = 0;
-    for _ in 0..5 {
-        let delay = full * (0.1 + 0.8 * rng.uniform());
+    let mut kills = 0;
+    // The kill moments are fractions of the reference run's time; on a
+    // shared machine a later run can be faster than the reference and end
+    // before its kill, which tests nothing: such a finished run is thrown
+    // away and the time scale halved, so five kills always land mid-run.
+    let mut scale = full;
+    for _ in 0..20 {
+        if kills == 5 {
+            break;
+        }
+        let delay = scale * (0.1 + 0.8 * rng.uniform());
         let mut child = scan_command(dir.path(), &out, extra).spawn().unwrap();
         std::thread::sleep(Duration::from_secs_f64(delay));
+        let finished = child.try_wait().unwrap().is_some();
         let _ = child.kill(); // SIGKILL
         let o = child.wait_with_output().unwrap();
-        if String::from_utf8_lossy(&o.stderr).contains("resuming") {
-            resumed += 1;
+        if finished {
+            if out.exists() {
+                std::fs::remove_dir_all(&out).unwrap();
+            }
+            scale *= 0.5;
+        } else {
+            kills += 1;
+            if String::from_utf8_lossy(&o.stderr).contains("resuming") {
+                resumed += 1;
+            }
         }
     }
     let o = scan_command(dir.path(), &out, extra).output().unwrap();
