@@ -14,7 +14,9 @@ const LEVELS: [f64; 8] = [0.5, 0.25, 0.10, 0.05, 0.025, 0.01, 0.005, 0.001];
 /// whose rows run k = -0.9, -0.5, -0.2, -0.1, 0, 0.1, ..., 0.5). The values
 /// were transcribed from a public reproduction of the table; each row
 /// increases along the levels and down the shapes, which the unit tests
-/// check.
+/// check, and tests/python/check_ad_points.py (run by .ci/run) compares
+/// the rows for shapes 0.5, 0.2, 0 and -0.2 with A^2 simulated from scipy's
+/// genpareto fits (within 10%; measured 0-7%).
 const SHAPES: [f64; 10] = [0.9, 0.5, 0.2, 0.1, 0.0, -0.1, -0.2, -0.3, -0.4, -0.5];
 const POINTS: [[f64; 8]; 10] = [
     [0.339, 0.471, 0.641, 0.771, 0.905, 1.086, 1.226, 1.559],
