@@ -1970,3 +1970,295 @@ fn covariates_with_missing_values_equal_brute_force_on_the_observed_samples() {
         }
     }
 }
+
+/// The permutation of the observed units `units` induced by the relabelling
+/// `perm` of all units (unit i takes the residual of `perm[i]`): riffle's
+/// documented restriction by first return, unit i of `units` takes the
+/// residual of the first observed unit on perm[i], perm[perm[i]], ...
+fn first_return(perm: &[usize], units: &[usize]) -> Vec<usize> {
+    units
+        .iter()
+        .map(|&i| {
+            let mut j = perm[i];
+            while !units.contains(&j) {
+                j = perm[j];
+            }
+            j
+        })
+        .collect()
+}
+
+/// |t| of the group effect after age, fitted on the observed samples of y,
+/// with the nuisance residuals moved by `perm` restricted to them.
+fn masked_model_t(group: &[f64], age: &[f64], y: &[f64], perm: &[usize]) -> f64 {
+    let units: Vec<usize> = (0..y.len()).filter(|&i| !y[i].is_nan()).collect();
+    let take = |c: &[f64]| -> Vec<f64> { units.iter().map(|&i| c[i]).collect() };
+    let nuisance = vec![vec![1.0; units.len()], take(age)];
+    let yo = take(y);
+    let (gamma, _, _) = least_squares(&nuisance, &yo);
+    let fit: Vec<f64> = (0..yo.len())
+        .map(|k| gamma[0] + gamma[1] * nuisance[1][k])
+        .collect();
+    let resid: Vec<f64> = yo.iter().zip(&fit).map(|(a, b)| a - b).collect();
+    let position = |u: usize| units.iter().position(|&x| x == u).unwrap();
+    let induced = first_return(perm, &units);
+    let y_star: Vec<f64> = (0..yo.len())
+        .map(|k| resid[position(induced[k])] + fit[k])
+        .collect();
+    let columns = vec![take(group), nuisance[0].clone(), nuisance[1].clone()];
+    ols_statistic(&columns, 1, &y_star).abs()
+}
+
+/// Single-step and step-down maxT over complete and masked rows of a
+/// covariate design (two groups after age) against all 7! relabelings held
+/// in memory: complete rows permute all residuals, masked rows the
+/// observed ones by the restriction of the same relabelling; the common
+/// scale is the model's t (riffle's documented choice).
+#[test]
+fn covariate_maxt_over_complete_and_masked_rows_equals_brute_force() {
+    let classes = [0usize, 1, 0, 1, 1, 0, 1];
+    let age = [31.0, 45.0, 52.0, 38.0, 61.0, 29.0, 50.0];
+    let group: Vec<f64> = classes.iter().map(|&c| c as f64).collect();
+    let mut rng = TestRng::new(5);
+    let rows: Vec<Vec<f64>> = (0..9)
+        .map(|f| {
+            let mut row: Vec<f64> = (0..7)
+                .map(|i| 0.05 * age[i] + rng.normal() + 0.5 * f as f64 * group[i])
+                .collect();
+            if f % 3 != 0 {
+                row[(2 * f) % 7] = f64::NAN;
+            }
+            row
+        })
+        .collect();
+    let all = orderings(7);
+    let null: Vec<Vec<f64>> = rows
+        .iter()
+        .map(|y| {
+            all.iter()
+                .map(|perm| masked_model_t(&group, &age, y, perm))
+                .collect()
+        })
+        .collect();
+    let identity: Vec<usize> = (0..7).collect();
+    let obs: Vec<f64> = rows
+        .iter()
+        .map(|y| masked_model_t(&group, &age, y, &identity))
+        .collect();
+    let (p_perm, single, step) = brute_force_maxt(&obs, &null);
+    let mut sheet = String::from("sample\tgroup\tage\n");
+    for i in 0..7 {
+        sheet.push_str(&format!("s{i}\tg{}\t{}\n", classes[i], age[i]));
+    }
+    let dir = tempfile::tempdir().unwrap();
+    for chunk in [2, 100] {
+        let mut o = options(dir.path());
+        o.test = TestKind::Student;
+        o.perms = 10_000;
+        o.min_observed = 2;
+        o.chunk_rows = Some(chunk);
+        o.covariates = vec!["age".into()];
+        let columns = riffle::design::DesignColumns {
+            group: Some("group".into()),
+            covariates: o.covariates.clone(),
+            ..Default::default()
+        };
+        let summary = common::scan_with_sheet(
+            &rows,
+            &sheet,
+            riffle::stats::DesignKind::Groups,
+            &columns,
+            &o,
+        );
+        assert_eq!(summary.tested as usize, rows.len());
+        let table = Table::read(&summary.results_path);
+        let got = [
+            table.f64s("p_perm"),
+            table.f64s("p_maxt_single"),
+            table.f64s("p_maxt"),
+        ];
+        for (name, (riffle, expected)) in ["p_perm", "single-step", "step-down"]
+            .iter()
+            .zip(got.iter().zip([&p_perm, &single, &step]))
+        {
+            for j in 0..rows.len() {
+                assert!(
+                    (riffle[j] - expected[j]).abs() < 1e-12,
+                    "{name} {j}: riffle {} brute force {}",
+                    riffle[j],
+                    expected[j]
+                );
+            }
+        }
+    }
+}
+
+/// Spearman and a covariate design (trait after age and a text covariate)
+/// on 36 samples with up to 30% missing and ties: exceedance counts equal
+/// a brute-force count over the same drawn relabelings (rho by textbook
+/// mid-ranks; the model by OLS on the observed samples), results do not
+/// depend on threads, chunk size or the pooled null, complete rows keep
+/// every value they have alone, and sequential stopping and the tail fit
+/// give the same bytes at any thread count.
+#[test]
+fn spearman_and_covariate_rows_with_missing_values_count_exactly_and_are_deterministic() {
+    use riffle::design::{DesignColumns, SampleSheet, StudyDesign};
+    let big_n = 36usize;
+    let mut rng = TestRng::new(9);
+    let score: Vec<f64> = (0..big_n)
+        .map(|_| (5.0 + 2.0 * rng.normal()).round())
+        .collect();
+    let age: Vec<f64> = (0..big_n).map(|_| 50.0 + 10.0 * rng.normal()).collect();
+    let site: Vec<&str> = (0..big_n).map(|i| ["a", "b", "c"][i % 3]).collect();
+    let mut sheet_text = String::from("sample\tscore\tage\tsite\n");
+    for i in 0..big_n {
+        sheet_text.push_str(&format!("s{i}\t{}\t{}\t{}\n", score[i], age[i], site[i]));
+    }
+    let rows: Vec<Vec<f64>> = (0..48)
+        .map(|f| {
+            let missing = [0.0, 0.1, 0.3][f % 3];
+            let slope = [0.0, 0.2, 0.6][f / 3 % 3];
+            (0..big_n)
+                .map(|i| {
+                    if rng.uniform() < missing {
+                        f64::NAN
+                    } else {
+                        let v = 0.05 * age[i] + slope * score[i] + rng.normal();
+                        if f % 4 == 0 {
+                            v.round()
+                        } else {
+                            v
+                        }
+                    }
+                })
+                .collect()
+        })
+        .collect();
+    let sheet = SampleSheet::parse(
+        std::path::Path::new("sheet.tsv"),
+        sheet_text.as_bytes(),
+        "sample",
+    )
+    .unwrap();
+    let (perms, seed) = (300, 4);
+    for covariates in [false, true] {
+        let columns = DesignColumns {
+            trait_column: Some("score".into()),
+            covariates: if covariates {
+                vec!["age".into(), "site".into()]
+            } else {
+                Vec::new()
+            },
+            ..Default::default()
+        };
+        let design =
+            StudyDesign::from_sheet(&sheet, riffle::stats::DesignKind::Trait, &columns).unwrap();
+        let classes = design.trait_classes();
+        let relabel = Relabelings::generate(&design.scheme(&classes), perms, seed);
+        let site_level = |l: &str| -> Vec<f64> {
+            site.iter().map(|&s| f64::from(u8::from(s == l))).collect()
+        };
+        // Oriented (two-sided) statistic of row x as unit i takes trait
+        // value (residual) of unit sources[i].
+        let stat = |x: &[f64], sources: &[usize]| -> f64 {
+            if !covariates {
+                let order: Vec<usize> = sources.to_vec();
+                return observed_rho(x, &score, &order).abs();
+            }
+            let units: Vec<usize> = (0..big_n).filter(|&i| !x[i].is_nan()).collect();
+            let take = |c: &[f64]| -> Vec<f64> { units.iter().map(|&i| c[i]).collect() };
+            let nuisance = vec![
+                vec![1.0; units.len()],
+                take(&age),
+                take(&site_level("b")),
+                take(&site_level("c")),
+            ];
+            let yo = take(x);
+            let (gamma, _, _) = least_squares(&nuisance, &yo);
+            let fit: Vec<f64> = (0..yo.len())
+                .map(|k| (0..4).map(|r| gamma[r] * nuisance[r][k]).sum())
+                .collect();
+            let resid: Vec<f64> = yo.iter().zip(&fit).map(|(a, b)| a - b).collect();
+            let induced = first_return(sources, &units);
+            let position = |u: usize| units.iter().position(|&x| x == u).unwrap();
+            let y_star: Vec<f64> = (0..yo.len())
+                .map(|k| resid[position(induced[k])] + fit[k])
+                .collect();
+            let mut full = vec![take(&score)];
+            full.extend(nuisance);
+            ols_statistic(&full, 1, &y_star).abs()
+        };
+        let run = |threads: usize, chunk: usize, rows: &[Vec<f64>], extra: &str| {
+            let dir = tempfile::tempdir().unwrap();
+            let mut o = options(dir.path());
+            o.test = TestKind::Spearman;
+            if covariates {
+                o.test = TestKind::Pearson;
+                o.covariates = columns.covariates.clone();
+            }
+            o.perms = perms;
+            o.seed = seed;
+            o.threads = threads;
+            o.chunk_rows = Some(chunk);
+            o.pooled_null = extra == "pooled";
+            if extra == "sequential" {
+                o.stop_after = Some(5);
+            }
+            if extra == "tail" {
+                o.tail_fit = Some(10);
+            }
+            let summary = common::scan_with_sheet(
+                rows,
+                &sheet_text,
+                riffle::stats::DesignKind::Trait,
+                &columns,
+                &o,
+            );
+            let bytes = std::fs::read(&summary.results_path).unwrap();
+            (Table::read(&summary.results_path), bytes, dir)
+        };
+        let (table, bytes, _dir) = run(2, 7, &rows, "pooled");
+        let exceed = table.f64s("n_exceed");
+        let note = table.text("note");
+        let identity: Vec<usize> = (0..big_n).collect();
+        let mut tested = 0;
+        for (f, x) in rows.iter().enumerate() {
+            if !note[f].is_empty() {
+                continue;
+            }
+            tested += 1;
+            let obs = stat(x, &identity);
+            let count = (0..relabel.count)
+                .filter(|&b| {
+                    let sources: Vec<usize> =
+                        relabel.source_row(b).iter().map(|&s| s as usize).collect();
+                    stat(x, &sources) >= obs - 1e-9 * (1.0 + obs)
+                })
+                .count();
+            assert_eq!(exceed[f], count as f64, "covariates {covariates} feature {f}");
+        }
+        assert_eq!(tested, rows.len(), "covariates {covariates}");
+        let (_, single, _d) = run(1, 5000, &rows, "pooled");
+        assert!(single == bytes, "covariates {covariates}: threads, chunk sizes");
+        let (_, plain, _d) = run(2, 5, &rows, "");
+        let (_, plain1, _d) = run(1, 100, &rows, "");
+        assert!(plain == plain1, "covariates {covariates}: without pooled null");
+        for extra in ["sequential", "tail"] {
+            let (_, a, _d1) = run(2, 5, &rows, extra);
+            let (_, b, _d2) = run(1, 1000, &rows, extra);
+            assert!(a == b, "covariates {covariates}: {extra}");
+        }
+        let complete: Vec<Vec<f64>> = rows.iter().step_by(3).cloned().collect();
+        assert!(complete.iter().flatten().all(|v| !v.is_nan()));
+        let interleaved: Vec<Vec<f64>> = rows.clone();
+        let (alone, _, _d1) = run(2, 7, &complete, "");
+        let (mixed, _, _d2) = run(2, 7, &interleaved, "");
+        for column in ["statistic", "p_param", "p_perm", "n_exceed", "effect"] {
+            let (a, b) = (alone.f64s(column), mixed.f64s(column));
+            for (k, value) in a.iter().enumerate() {
+                let v = b[3 * k];
+                assert_eq!(value.to_bits(), v.to_bits(), "{column} {k}");
+            }
+        }
+    }
+}
