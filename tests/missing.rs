@@ -2262,3 +2262,91 @@ fn spearman_and_covariate_rows_with_missing_values_count_exactly_and_are_determi
         }
     }
 }
+
+/// Covariate designs: `--min-observed` per group, two residual df in the
+/// refitted model, and an effect that the covariates explain on the
+/// observed samples are each reported untested with their reason;
+/// Spearman needs three observed samples.
+#[test]
+fn covariate_and_spearman_rows_name_why_they_are_untested() {
+    let classes = [0usize, 0, 0, 0, 1, 1, 1, 1];
+    // Site matches the group except on samples 3 and 4.
+    let site = ["x", "x", "x", "y", "x", "y", "y", "y"];
+    let age = [31.0, 45.0, 52.0, 38.0, 61.0, 29.0, 50.0, 44.0];
+    let mut sheet = String::from("sample\tgroup\tage\tsite\n");
+    for i in 0..8 {
+        sheet.push_str(&format!("s{i}\tg{}\t{}\t{}\n", classes[i], age[i], site[i]));
+    }
+    let mut rng = TestRng::new(31);
+    let base: Vec<f64> = (0..8).map(|_| rng.normal()).collect();
+    let with_missing = |missing: &[usize]| -> Vec<f64> {
+        (0..8)
+            .map(|i| {
+                if missing.contains(&i) {
+                    f64::NAN
+                } else {
+                    base[i]
+                }
+            })
+            .collect()
+    };
+    let rows = vec![
+        with_missing(&[]),
+        with_missing(&[0]),
+        // Group A keeps two observed values.
+        with_missing(&[0, 1]),
+        // Site equals the group on the observed samples.
+        with_missing(&[3, 4]),
+        // Four observed samples, four model columns.
+        with_missing(&[0, 1, 5, 6]),
+    ];
+    let dir = tempfile::tempdir().unwrap();
+    let mut o = options(dir.path());
+    o.test = TestKind::Student;
+    o.perms = 200;
+    o.covariates = vec!["age".into(), "site".into()];
+    let columns = riffle::design::DesignColumns {
+        group: Some("group".into()),
+        covariates: o.covariates.clone(),
+        ..Default::default()
+    };
+    let run = |o: &riffle::scan::ScanOptions| {
+        let summary = common::scan_with_sheet(
+            &rows,
+            &sheet,
+            riffle::stats::DesignKind::Groups,
+            &columns,
+            o,
+        );
+        Table::read(&summary.results_path)
+    };
+    let table = run(&o);
+    let note = table.text("note");
+    assert_eq!(note[0], "");
+    assert_eq!(note[1], "");
+    assert_eq!(note[2], "too few observed values");
+    assert_eq!(
+        note[3],
+        "effect explained by the covariates on the observed values"
+    );
+    assert_eq!(note[4], "too few observed values");
+    assert!(table.f64s("p_perm")[3].is_nan());
+    assert_eq!(table.f64s("n_a")[1], 3.0);
+    assert_eq!(table.f64s("n_b")[1], 4.0);
+    o.min_observed = 2;
+    let note = run(&o).text("note").to_vec();
+    assert_eq!(note[2], "", "two observed values per group with --min-observed 2");
+    assert_eq!(note[4], "too few observed values", "df below two");
+    // Spearman: three observed samples at least, whatever --min-observed.
+    let trait_rows = vec![
+        vec![1.0, f64::NAN, 3.0, f64::NAN, 2.0, f64::NAN, f64::NAN],
+        vec![1.0, f64::NAN, 3.0, f64::NAN, f64::NAN, f64::NAN, f64::NAN],
+    ];
+    let mut o = options(dir.path());
+    o.test = TestKind::Spearman;
+    o.perms = 99;
+    o.min_observed = 2;
+    let table = Table::read(&scan_trait_values(&trait_rows, &TIED_TRAIT, &o).results_path);
+    assert_eq!(table.text("note")[0], "");
+    assert_eq!(table.text("note")[1], "too few observed values");
+}
