@@ -1569,14 +1569,16 @@ fn spearman_exact_p_with_missing_values_equals_brute_force() {
         );
         for (f, row) in rows.iter().enumerate() {
             let rho = observed_rho(row, &TIED_TRAIT, &identity);
-            assert!((stat[f] - rho).abs() < 1e-12, "feature {f}: {} vs {rho}", stat[f]);
+            assert!(
+                (stat[f] - rho).abs() < 1e-12,
+                "feature {f}: {} vs {rho}",
+                stat[f]
+            );
             assert_eq!(n_a[f], row.iter().filter(|v| !v.is_nan()).count() as f64);
             let t_obs = orient(side, rho);
             let reached = all
                 .iter()
-                .filter(|order| {
-                    orient(side, observed_rho(row, &TIED_TRAIT, order)) >= t_obs - 1e-9
-                })
+                .filter(|order| orient(side, observed_rho(row, &TIED_TRAIT, order)) >= t_obs - 1e-9)
                 .count();
             let expected = reached as f64 / all.len() as f64;
             assert!(
@@ -1842,8 +1844,18 @@ fn covariates_with_missing_values_equal_brute_force_on_the_observed_samples() {
         .collect();
     let mut rng = TestRng::new(77);
     let cases: [(&str, [usize; 8], TestKind, bool); 3] = [
-        ("two groups", [0, 1, 0, 1, 1, 0, 1, 0], TestKind::Student, false),
-        ("three groups", [0, 1, 2, 0, 1, 2, 1, 0], TestKind::Anova, false),
+        (
+            "two groups",
+            [0, 1, 0, 1, 1, 0, 1, 0],
+            TestKind::Student,
+            false,
+        ),
+        (
+            "three groups",
+            [0, 1, 2, 0, 1, 2, 1, 0],
+            TestKind::Anova,
+            false,
+        ),
         ("trait, strata", [0; 8], TestKind::Pearson, true),
     ];
     for (name, classes, test, trait_design) in cases {
@@ -1960,7 +1972,11 @@ fn covariates_with_missing_values_equal_brute_force_on_the_observed_samples() {
             };
             let tol = 1e-9 * (1.0 + s.abs());
             assert!((stat[f] - s).abs() < tol, "{name} {f}: {} vs {s}", stat[f]);
-            assert!((effect[f] - e).abs() < 1e-9, "{name} {f}: effect {} vs {e}", effect[f]);
+            assert!(
+                (effect[f] - e).abs() < 1e-9,
+                "{name} {f}: effect {} vs {e}",
+                effect[f]
+            );
             assert!((p_param[f] - reference).abs() < 1e-9, "{name} {f}: p_param");
             assert!(
                 (p_perm[f] - p).abs() < 1e-12,
@@ -2155,9 +2171,8 @@ fn spearman_and_covariate_rows_with_missing_values_count_exactly_and_are_determi
             StudyDesign::from_sheet(&sheet, riffle::stats::DesignKind::Trait, &columns).unwrap();
         let classes = design.trait_classes();
         let relabel = Relabelings::generate(&design.scheme(&classes), perms, seed);
-        let site_level = |l: &str| -> Vec<f64> {
-            site.iter().map(|&s| f64::from(u8::from(s == l))).collect()
-        };
+        let site_level =
+            |l: &str| -> Vec<f64> { site.iter().map(|&s| f64::from(u8::from(s == l))).collect() };
         // Oriented (two-sided) statistic of row x as unit i takes trait
         // value (residual) of unit sources[i].
         let stat = |x: &[f64], sources: &[usize]| -> f64 {
@@ -2235,14 +2250,23 @@ fn spearman_and_covariate_rows_with_missing_values_count_exactly_and_are_determi
                     stat(x, &sources) >= obs - 1e-9 * (1.0 + obs)
                 })
                 .count();
-            assert_eq!(exceed[f], count as f64, "covariates {covariates} feature {f}");
+            assert_eq!(
+                exceed[f], count as f64,
+                "covariates {covariates} feature {f}"
+            );
         }
         assert_eq!(tested, rows.len(), "covariates {covariates}");
         let (_, single, _d) = run(1, 5000, &rows, "pooled");
-        assert!(single == bytes, "covariates {covariates}: threads, chunk sizes");
+        assert!(
+            single == bytes,
+            "covariates {covariates}: threads, chunk sizes"
+        );
         let (_, plain, _d) = run(2, 5, &rows, "");
         let (_, plain1, _d) = run(1, 100, &rows, "");
-        assert!(plain == plain1, "covariates {covariates}: without pooled null");
+        assert!(
+            plain == plain1,
+            "covariates {covariates}: without pooled null"
+        );
         for extra in ["sequential", "tail"] {
             let (_, a, _d1) = run(2, 5, &rows, extra);
             let (_, b, _d2) = run(1, 1000, &rows, extra);
@@ -2335,7 +2359,10 @@ fn covariate_and_spearman_rows_name_why_they_are_untested() {
     assert_eq!(table.f64s("n_b")[1], 4.0);
     o.min_observed = 2;
     let note = run(&o).text("note").to_vec();
-    assert_eq!(note[2], "", "two observed values per group with --min-observed 2");
+    assert_eq!(
+        note[2], "",
+        "two observed values per group with --min-observed 2"
+    );
     assert_eq!(note[4], "too few observed values", "df below two");
     // Spearman: three observed samples at least, whatever --min-observed.
     let trait_rows = vec![
@@ -2349,4 +2376,122 @@ fn covariate_and_spearman_rows_name_why_they_are_untested() {
     let table = Table::read(&scan_trait_values(&trait_rows, &TIED_TRAIT, &o).results_path);
     assert_eq!(table.text("note")[0], "");
     assert_eq!(table.text("note")[1], "too few observed values");
+}
+
+/// Shards and merge give the single run's bytes for masked Spearman and
+/// covariate rows (step-down maxT across shards, pooled null).
+#[test]
+fn shards_with_masked_spearman_and_covariate_rows_merge_to_the_single_run() {
+    let dir = tempfile::tempdir().unwrap();
+    let path = |name: &str| dir.path().join(name).to_str().unwrap().to_string();
+    let (matrix, plain) = (path("m.arrow"), path("plain.tsv"));
+    let out = common::riffle(&[
+        "simulate",
+        "--out",
+        &matrix,
+        "--sheet",
+        &plain,
+        "--features",
+        "400",
+        "--group-sizes",
+        "8,8",
+        "--missing-fraction",
+        "0.1",
+        "--seed",
+        "3",
+    ]);
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    // Invented covariates and a tied score beside the simulated groups.
+    let sheet = path("sheet.tsv");
+    let text = std::fs::read_to_string(&plain).unwrap();
+    let mut lines = text.lines();
+    let mut extended = format!("{}\tage\tsite\tscore\n", lines.next().unwrap());
+    for (i, line) in lines.enumerate() {
+        extended.push_str(&format!(
+            "{line}\t{}\ts{}\t{}\n",
+            30 + (i * 17) % 41,
+            i % 3,
+            (i * 7) % 5
+        ));
+    }
+    std::fs::write(&sheet, extended).unwrap();
+    for (label, design) in [
+        (
+            "spearman",
+            ["--trait", "score", "--test", "spearman", "--pooled-null"].as_slice(),
+        ),
+        (
+            "covariates",
+            [
+                "--group",
+                "group",
+                "--test",
+                "student",
+                "--covariates",
+                "age,site",
+            ]
+            .as_slice(),
+        ),
+    ] {
+        let scan = |out_dir: &str, shard: Option<&str>| {
+            let mut args = vec![
+                "scan",
+                "--matrix",
+                &matrix,
+                "--samples",
+                &sheet,
+                "--perms",
+                "300",
+                "--format",
+                "tsv",
+                "--no-report",
+                "--quiet",
+                "--out",
+                out_dir,
+            ];
+            args.extend(design);
+            if let Some(s) = shard {
+                args.extend(["--shard", s]);
+            }
+            let out = common::riffle(&args);
+            assert!(
+                out.status.success(),
+                "{}",
+                String::from_utf8_lossy(&out.stderr)
+            );
+        };
+        let name = |s: &str| path(&format!("{label}-{s}"));
+        scan(&name("single"), None);
+        scan(&name("one"), Some("1/2"));
+        scan(&name("two"), Some("2/2"));
+        let out = common::riffle(&[
+            "merge",
+            &name("one"),
+            &name("two"),
+            "--out",
+            &name("merged"),
+            "--quiet",
+        ]);
+        assert!(
+            out.status.success(),
+            "{}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+        let single = format!("{}/results.tsv", name("single"));
+        let a = std::fs::read(&single).unwrap();
+        let b = std::fs::read(format!("{}/results.tsv", name("merged"))).unwrap();
+        assert!(a == b, "{label}: merged shards differ from the single run");
+        let table = Table::read(std::path::Path::new(&single));
+        let tested = table.text("note").iter().filter(|n| n.is_empty()).count();
+        assert!(tested > 390, "{label}: {tested} tested");
+        let observed: f64 = table.f64s("n_a").iter().chain(&table.f64s("n_b")).sum();
+        assert!(
+            observed < 0.95 * 400.0 * 16.0,
+            "{label}: the matrix has missing values"
+        );
+    }
 }

@@ -437,8 +437,7 @@ impl Kernel {
                 // Sign flips keep the observed pairs: no mask GEMM; nor
                 // for rows computed one by one (`exact_rows`).
                 let exact = masked && self.exact_masked();
-                let mask_gemm =
-                    masked && !exact && self.spec.test.design() != DesignKind::Paired;
+                let mask_gemm = masked && !exact && self.spec.test.design() != DesignKind::Paired;
                 if mask_gemm {
                     tiles.masks.resize(ROW_TILE * COL_TILE * r, 0.0);
                     let masks = &mut tiles.masks;

@@ -108,9 +108,7 @@ pub fn model_reference(spec: &TestSpec, raw: &[f64], labels: &[u8]) -> ModelRefe
         }
         return ModelReference::StudentT { df };
     }
-    if spec.test.design() == DesignKind::Paired
-        && raw.iter().any(|v| v.is_nan())
-    {
+    if spec.test.design() == DesignKind::Paired && raw.iter().any(|v| v.is_nan()) {
         // The test was on the observed pairs.
         let m = spec.sizes.n_a;
         let kept: Vec<usize> = (0..m)
@@ -129,9 +127,7 @@ pub fn model_reference(spec: &TestSpec, raw: &[f64], labels: &[u8]) -> ModelRefe
         };
         return model_reference(&observed, &values, labels);
     }
-    if spec.test.design() == DesignKind::Trait
-        && raw.iter().any(|v| v.is_nan())
-    {
+    if spec.test.design() == DesignKind::Trait && raw.iter().any(|v| v.is_nan()) {
         return ModelReference::Correlation {
             n: raw.iter().filter(|v| !v.is_nan()).count() as f64,
         };
