@@ -215,7 +215,9 @@ impl LinearModel {
                 basis.push(q);
             }
         }
-        let x = take(&self.raw_effects[0]);
+        // A model without its design columns (itself refitted) has
+        // nothing to refit from.
+        let x = take(self.raw_effects.first().ok_or(Unfit::Confounded)?);
         let mut residual = x.clone();
         for q in &basis {
             let c: f64 = q.iter().zip(&residual).map(|(a, b)| a * b).sum();
@@ -230,7 +232,7 @@ impl LinearModel {
         let mut spanned = basis.clone();
         spanned.push(effect_direction.clone());
         let mut further_effects = Vec::new();
-        for x in &self.raw_effects[1..] {
+        for x in self.raw_effects.iter().skip(1) {
             let q = orthogonal_remainder(&take(x), &spanned).ok_or(Unfit::Confounded)?;
             spanned.push(q.clone());
             further_effects.push(q);
