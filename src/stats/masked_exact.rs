@@ -44,18 +44,18 @@ pub struct ExactRow {
     kind: Kind,
     buffer: Vec<f64>,
     sums: Vec<f64>,
-    member: Vec<bool>,
 }
 
 enum Kind {
     Spearman {
         /// The feature's standardized mid-ranks, observed units only.
         z: Vec<f64>,
-        /// Units in ascending order of their trait value.
-        order: Vec<usize>,
-        /// Ends (in `order`) of the runs of equal trait values.
-        run_ends: Vec<usize>,
-        rank_of: Vec<f64>,
+        /// Per unit, its run of equal trait values (runs in ascending
+        /// order of the value).
+        run_of: Vec<u32>,
+        /// Per run: landed units, then (after the prefix pass) the mid-rank
+        /// of the run among them.
+        counts: Vec<f64>,
     },
     Model {
         /// Residuals under the covariates on the observed units, sum of
@@ -104,17 +104,18 @@ impl TestSpec {
                 let w = &self.trait_weights;
                 let mut order: Vec<usize> = (0..w.len()).collect();
                 order.sort_by(|&a, &b| w[a].total_cmp(&w[b]).then(a.cmp(&b)));
-                let mut run_ends = Vec::new();
-                for k in 1..=order.len() {
-                    if k == order.len() || w[order[k]] != w[order[k - 1]] {
-                        run_ends.push(k);
+                let mut run_of = vec![0u32; w.len()];
+                let mut run = 0u32;
+                for k in 0..order.len() {
+                    if k > 0 && w[order[k]] != w[order[k - 1]] {
+                        run += 1;
                     }
+                    run_of[order[k]] = run;
                 }
                 Kind::Spearman {
                     z: values,
-                    order,
-                    run_ends,
-                    rank_of: vec![0.0; w.len()],
+                    run_of,
+                    counts: vec![0.0; run as usize + 1],
                 }
             }
         };
@@ -124,7 +125,6 @@ impl TestSpec {
             kind,
             buffer: vec![0.0; m],
             sums: Vec::new(),
-            member: vec![false; n],
         }
     }
 }
@@ -143,37 +143,24 @@ impl ExactRow {
         let source = |i: usize| sources.map_or(i, |s| s[i] as usize);
         match &mut self.kind {
             Kind::Degenerate => None,
-            Kind::Spearman {
-                z,
-                order,
-                run_ends,
-                rank_of,
-            } => {
+            Kind::Spearman { z, run_of, counts } => {
+                // Mid-ranks among the trait values landing on observed
+                // samples: count them per run of equal values, then each
+                // run's mid-rank is the count below it plus (count + 1) / 2.
+                counts.fill(0.0);
                 for &i in &self.observed {
-                    self.member[source(i)] = true;
+                    counts[run_of[source(i)] as usize] += 1.0;
                 }
-                // Mid-ranks among the trait values on observed samples.
-                let (mut placed, mut start) = (0.0, 0);
-                for &end in run_ends.iter() {
-                    let run = &order[start..end];
-                    let count = run.iter().filter(|&&u| self.member[u]).count();
-                    if count > 0 {
-                        let rank = placed + (count as f64 + 1.0) / 2.0;
-                        for &u in run {
-                            if self.member[u] {
-                                rank_of[u] = rank;
-                            }
-                        }
-                        placed += count as f64;
-                    }
-                    start = end;
+                let mut placed = 0.0;
+                for c in counts.iter_mut() {
+                    let count = *c;
+                    *c = placed + (count + 1.0) / 2.0;
+                    placed += count;
                 }
                 let mean = (m as f64 + 1.0) / 2.0;
                 let (mut cross, mut ss) = (0.0, 0.0);
                 for (k, &i) in self.observed.iter().enumerate() {
-                    let u = source(i);
-                    self.member[u] = false;
-                    let r = rank_of[u] - mean;
+                    let r = counts[run_of[source(i)] as usize] - mean;
                     cross += z[k] * r;
                     ss += r * r;
                 }
