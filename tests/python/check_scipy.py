@@ -568,8 +568,10 @@ def check_missing_covariates(folder, rng):
                    + args)
         worst_param = worst_perm = 0.0
         tested = 0
-        for r, y in zip(res, rows):
+        for k, (r, y) in enumerate(zip(res, rows)):
             keep = ~np.isnan(y)
+            if k == 1 and "site" in covariates and r["note"] != "":
+                worst_param = math.inf  # the row without level z must be tested
             if arms is not None and min(np.sum(keep & (arms == a)) for a in range(arms.max() + 1)) < 2:
                 worst_param = max(worst_param, 0.0 if r["note"] == "too few observed values" else math.inf)
                 continue
