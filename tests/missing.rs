@@ -3,7 +3,9 @@
 //! permutation p-values against brute force over every split of all
 //! samples (the missing ones drop out of whichever group they land in),
 //! maxT across complete and masked features, `--min-observed`, and
-//! complete features unchanged by masked ones beside them.
+//! complete features unchanged by masked ones beside them; the same for
+//! pairs, Pearson, Spearman (trait ranked among the observed samples) and
+//! covariate designs (Freedman–Lane over the observed samples alone).
 
 mod common;
 

@@ -15,6 +15,9 @@ use super::{
 pub enum Status {
     Tested = 0,
     Constant = 1,
+    // Code 2 (missing values in a design without masking) is retired, not
+    // reused: a spill written by an older version fails to read instead of
+    // being misread.
     NonFinite = 3,
     NoWithinVariance = 4,
     /// Fewer observed (non-missing) values than `--min-observed` in a group.
