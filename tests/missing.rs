@@ -2238,6 +2238,10 @@ fn spearman_and_covariate_rows_with_missing_values_count_exactly_and_are_determi
         let exceed = table.f64s("n_exceed");
         let note = table.text("note");
         let identity: Vec<usize> = (0..big_n).collect();
+        // Sequential stopping at h = 5 (Besag & Clifford 1991): L is the
+        // position of the 5th exceedance in relabelling order, else all B.
+        let (sequential, _, _ds) = run(2, 7, &rows, "sequential");
+        let (seq_exceed, seq_used) = (sequential.f64s("n_exceed"), sequential.f64s("n_relabel"));
         let mut tested = 0;
         for (f, x) in rows.iter().enumerate() {
             if !note[f].is_empty() {
@@ -2245,16 +2249,32 @@ fn spearman_and_covariate_rows_with_missing_values_count_exactly_and_are_determi
             }
             tested += 1;
             let obs = stat(x, &identity);
-            let count = (0..relabel.count)
-                .filter(|&b| {
+            let hits: Vec<bool> = (0..relabel.count)
+                .map(|b| {
                     let sources: Vec<usize> =
                         relabel.source_row(b).iter().map(|&s| s as usize).collect();
                     stat(x, &sources) >= obs - 1e-9 * (1.0 + obs)
                 })
-                .count();
+                .collect();
+            let count = hits.iter().filter(|&&h| h).count();
             assert_eq!(
                 exceed[f], count as f64,
                 "covariates {covariates} feature {f}"
+            );
+            let fifth = hits
+                .iter()
+                .enumerate()
+                .filter(|(_, &h)| h)
+                .nth(4)
+                .map(|(b, _)| b + 1);
+            let (e, l) = match fifth {
+                Some(l) => (5, l),
+                None => (count, relabel.count),
+            };
+            assert_eq!(
+                (seq_exceed[f], seq_used[f]),
+                (e as f64, l as f64),
+                "sequential, covariates {covariates} feature {f}"
             );
         }
         assert_eq!(tested, rows.len(), "covariates {covariates}");
