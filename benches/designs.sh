@@ -3,7 +3,8 @@
 # two-group Student t on the same matrix, in one run: k = 4 groups (one-way
 # F), 3 covariates (age, sex, site; Freedman–Lane), k = 4 groups with the
 # same covariates, and 10% missing values (the same values with a tenth
-# removed). Throughput is tested features x B / wall time of the scan.
+# removed; Spearman with a trait and Student t + 3 covariates take the
+# per-row f64 path there). Throughput is tested features x B / wall time of the scan.
 # Usage: bash benches/designs.sh [SCRATCH_DIR]
 # Environment: FEATURES (200000), SAMPLES (48), PERMS (10000), THREADS (2),
 # RIFFLE (an already built binary).
@@ -25,11 +26,11 @@ gappy=$scratch/designs-missing.arrow
   --features "$features" --group-sizes "$half,$half" --seed 1 >/dev/null
 [ -f "$gappy" ] || $riffle simulate --out "$gappy" --sheet "$scratch/plain.tsv" \
   --features "$features" --group-sizes "$half,$half" --seed 1 --missing-fraction 0.1 >/dev/null
-# Invented design columns: four arms in turn, an age, a sex and three sites
-# (deterministic, so every run sees the same sheet).
+# Invented design columns: four arms in turn, an age, a sex, three sites
+# and a score with ties (deterministic, so every run sees the same sheet).
 awk -F'\t' 'BEGIN { OFS = "\t" }
-  NR == 1 { print $0, "arm", "age", "sex", "site"; next }
-  { i = NR - 2; print $0, "arm" (i % 4), 30 + (i * 17) % 41, (i % 5 < 2 ? "f" : "m"), "site" (i % 3) }' \
+  NR == 1 { print $0, "arm", "age", "sex", "site", "score"; next }
+  { i = NR - 2; print $0, "arm" (i % 4), 30 + (i * 17) % 41, (i % 5 < 2 ? "f" : "m"), "site" (i % 3), (i * 29) % 23 }' \
   "$scratch/plain.tsv" >"$scratch/sheet.tsv"
 
 run() { # label, matrix, then scan options
@@ -51,5 +52,8 @@ run "k = 4 groups, one-way F" "$matrix" --group arm --test anova
 run "two groups, Student t + 3 covariates (Freedman–Lane)" "$matrix" --group group --test student --covariates age,sex,site
 run "k = 4 groups, F + 3 covariates (Freedman–Lane)" "$matrix" --group arm --test anova --covariates age,sex,site
 run "two groups, Student t, 10% missing values" "$gappy" --group group --test student
+run "two groups, Student t + 3 covariates, 10% missing values" "$gappy" --group group --test student --covariates age,sex,site
+run "trait, Spearman" "$matrix" --trait score --test spearman
+run "trait, Spearman, 10% missing values" "$gappy" --trait score --test spearman
 run "two groups, Welch t" "$matrix" --group group --test welch
 run "two groups, Welch t, 10% missing values" "$gappy" --group group --test welch

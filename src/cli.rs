@@ -161,11 +161,12 @@ pub struct ScanArgs {
     pub tail_fit: Option<u64>,
     /// Features with missing values (NaN, NA, empty cells) are tested on
     /// their observed samples when each group keeps at least this many
-    /// (at least 2; for paired tests observed pairs, for pearson observed
-    /// samples, never fewer than 3 there; Spearman and covariate designs do
-    /// not mask). Three keeps two degrees of freedom in each group's
-    /// variance and more than one relabelling of the observed values; fewer
-    /// are reported untested ("too few observed values").
+    /// (at least 2; for paired tests observed pairs, for trait tests
+    /// observed samples, never fewer than 3 there; with covariates also two
+    /// residual degrees of freedom in the model refitted on them). Three
+    /// keeps two degrees of freedom in each group's variance and more than
+    /// one relabelling of the observed values; fewer are reported untested
+    /// ("too few observed values").
     #[arg(long, default_value_t = crate::stats::prepare::DEFAULT_MIN_OBSERVED)]
     pub min_observed: usize,
     /// No progress output.

@@ -3,7 +3,9 @@
 //! permutation p-values against brute force over every split of all
 //! samples (the missing ones drop out of whichever group they land in),
 //! maxT across complete and masked features, `--min-observed`, and
-//! complete features unchanged by masked ones beside them.
+//! complete features unchanged by masked ones beside them; the same for
+//! pairs, Pearson, Spearman (trait ranked among the observed samples) and
+//! covariate designs (Freedman–Lane over the observed samples alone).
 
 mod common;
 
@@ -775,40 +777,6 @@ fn k_groups_with_missing_values_equal_brute_force() {
 /// Designs without masking (Spearman: the trait's ranks among a feature's
 /// observed samples change with every relabelling) say so for a feature
 /// with missing values.
-#[test]
-fn unmasked_designs_name_the_reason() {
-    let trait_values = [3.1, 0.5, 2.2, 4.8, 1.0, 2.6, 1.7, 0.9];
-    let mut sheet = String::from("sample\tage\n");
-    for (i, t) in trait_values.iter().enumerate() {
-        sheet.push_str(&format!("s{i}\t{t}\n"));
-    }
-    let mut rng = TestRng::new(12);
-    let mut rows: Vec<Vec<f64>> = (0..3)
-        .map(|_| (0..8).map(|_| rng.normal()).collect())
-        .collect();
-    rows[1][4] = f64::NAN;
-    let columns = riffle::design::DesignColumns {
-        trait_column: Some("age".into()),
-        ..Default::default()
-    };
-    let dir = tempfile::tempdir().unwrap();
-    let mut o = options(dir.path());
-    o.test = TestKind::Spearman;
-    o.perms = 99;
-    let summary = common::scan_with_sheet(
-        &rows,
-        &sheet,
-        riffle::stats::DesignKind::Trait,
-        &columns,
-        &o,
-    );
-    let table = Table::read(&summary.results_path);
-    let note = table.text("note");
-    assert_eq!(note[0], "");
-    assert_eq!(note[1], "missing values (not masked in this design)");
-    assert!(table.f64s("p_perm")[1].is_nan());
-}
-
 /// Shards and merge give the single run's bytes with masked features
 /// (their standardized rows carry the mask into the step-down pass).
 #[test]
@@ -1506,5 +1474,1046 @@ fn pearson_masked_counts_equal_an_all_f64_count_and_are_deterministic() {
         for (k, value) in a.iter().enumerate() {
             assert_eq!(value.to_bits(), b[k].to_bits(), "{column} {k}");
         }
+    }
+}
+
+// ---- Spearman and covariate designs: the per-row f64 path. ----
+
+/// Mid-ranks (ties share the mean of their positions), 1-based (common
+/// practice, no single source).
+fn textbook_mid_ranks(v: &[f64]) -> Vec<f64> {
+    v.iter()
+        .map(|x| {
+            let below = v.iter().filter(|y| *y < x).count() as f64;
+            let equal = v.iter().filter(|y| *y == x).count() as f64;
+            below + (equal + 1.0) / 2.0
+        })
+        .collect()
+}
+
+/// Product-moment correlation (common practice, no single source); 0 when
+/// either side is constant.
+fn product_moment(a: &[f64], b: &[f64]) -> f64 {
+    let (ma, mb) = (mean(a), mean(b));
+    let sab: f64 = a.iter().zip(b).map(|(p, q)| (p - ma) * (q - mb)).sum();
+    let saa: f64 = a.iter().map(|p| (p - ma) * (p - ma)).sum();
+    let sbb: f64 = b.iter().map(|q| (q - mb) * (q - mb)).sum();
+    if saa == 0.0 || sbb == 0.0 {
+        return 0.0;
+    }
+    sab / (saa * sbb).sqrt()
+}
+
+/// Spearman's rho of the observed values of `x` with the trait values that
+/// `order` puts on their samples (sample i takes `values[order[i]]`): the
+/// product-moment correlation of the mid-ranks of both among the observed
+/// samples (Spearman 1904; ties by mid-ranks, common practice).
+fn observed_rho(x: &[f64], values: &[f64], order: &[usize]) -> f64 {
+    let (a, b): (Vec<f64>, Vec<f64>) = x
+        .iter()
+        .zip(order)
+        .filter(|(v, _)| !v.is_nan())
+        .map(|(&v, &k)| (v, values[k]))
+        .unzip();
+    product_moment(&textbook_mid_ranks(&a), &textbook_mid_ranks(&b))
+}
+
+/// A trait with ties, and rows with ties and up to two missing values.
+const TIED_TRAIT: [f64; 7] = [3.1, 0.5, 2.2, 3.1, 1.0, 2.2, 1.7];
+
+fn scan_trait_values(
+    rows: &[Vec<f64>],
+    values: &[f64],
+    o: &riffle::scan::ScanOptions,
+) -> riffle::scan::ScanSummary {
+    let mut sheet = String::from("sample\tage\n");
+    for (i, t) in values.iter().enumerate() {
+        sheet.push_str(&format!("s{i}\t{t}\n"));
+    }
+    let columns = riffle::design::DesignColumns {
+        trait_column: Some("age".into()),
+        ..Default::default()
+    };
+    common::scan_with_sheet(rows, &sheet, riffle::stats::DesignKind::Trait, &columns, o)
+}
+
+fn spearman_rows() -> Vec<Vec<f64>> {
+    let mut rows = trait_rows();
+    rows.push(vec![2.0, 1.0, f64::NAN, 2.0, 3.0, 1.0, 2.0]);
+    rows.push(vec![5.0, f64::NAN, 1.0, 4.0, f64::NAN, 3.0, 2.0]);
+    rows
+}
+
+/// Spearman with missing values and ties in the trait: exact p over every
+/// ordering of the trait (7! = 5040; riffle lists the 1260 distinct
+/// arrangements) equals the brute force over the observed samples; rho and
+/// the observed count are those of the observed samples.
+#[test]
+fn spearman_exact_p_with_missing_values_equals_brute_force() {
+    let rows = spearman_rows();
+    let all = orderings(7);
+    let identity: Vec<usize> = (0..7).collect();
+    let dir = tempfile::tempdir().unwrap();
+    for side in [Side::Both, Side::Greater, Side::Less] {
+        let mut o = options(dir.path());
+        o.test = TestKind::Spearman;
+        o.side = side;
+        o.perms = 10_000;
+        let summary = scan_trait_values(&rows, &TIED_TRAIT, &o);
+        assert!(summary.exact);
+        assert_eq!(summary.relabelings, 1259);
+        assert_eq!(summary.tested as usize, rows.len());
+        let table = Table::read(&summary.results_path);
+        let (p, stat, n_a) = (
+            table.f64s("p_perm"),
+            table.f64s("statistic"),
+            table.f64s("n_a"),
+        );
+        for (f, row) in rows.iter().enumerate() {
+            let rho = observed_rho(row, &TIED_TRAIT, &identity);
+            assert!(
+                (stat[f] - rho).abs() < 1e-12,
+                "feature {f}: {} vs {rho}",
+                stat[f]
+            );
+            assert_eq!(n_a[f], row.iter().filter(|v| !v.is_nan()).count() as f64);
+            let t_obs = orient(side, rho);
+            let reached = all
+                .iter()
+                .filter(|order| orient(side, observed_rho(row, &TIED_TRAIT, order)) >= t_obs - 1e-9)
+                .count();
+            let expected = reached as f64 / all.len() as f64;
+            assert!(
+                (p[f] - expected).abs() < 1e-12,
+                "{side:?} feature {f}: riffle {} brute force {expected}",
+                p[f]
+            );
+        }
+    }
+}
+
+/// Brute-force maxT (Westfall & Young 1993) over rows x relabelings of
+/// statistics on one common scale: (p_perm, single-step, step-down); the
+/// observed relabelling is among the columns.
+fn brute_force_maxt(obs: &[f64], null: &[Vec<f64>]) -> (Vec<f64>, Vec<f64>, Vec<f64>) {
+    let tol = 1e-9;
+    let m = obs.len();
+    let total = null[0].len() as f64;
+    let reach = |v: f64, o: f64| v >= o - tol * (1.0 + o.abs());
+    let columns = null[0].len();
+    let column_max: Vec<f64> = (0..columns)
+        .map(|b| null.iter().map(|t| t[b]).fold(f64::NEG_INFINITY, f64::max))
+        .collect();
+    let mut p_perm = vec![0.0; m];
+    let mut single = vec![0.0; m];
+    let mut tilde = vec![0.0; m];
+    for j in 0..m {
+        p_perm[j] = null[j].iter().filter(|&&t| reach(t, obs[j])).count() as f64 / total;
+        single[j] = column_max.iter().filter(|&&c| reach(c, obs[j])).count() as f64 / total;
+        let below: Vec<usize> = (0..m)
+            .filter(|&k| obs[k] <= obs[j] + tol * (1.0 + obs[j].abs()))
+            .collect();
+        tilde[j] = (0..columns)
+            .filter(|&b| below.iter().any(|&k| reach(null[k][b], obs[j])))
+            .count() as f64
+            / total;
+    }
+    let step = (0..m)
+        .map(|j| {
+            (0..m)
+                .filter(|&k| reach(obs[k], obs[j]))
+                .map(|k| tilde[k])
+                .fold(0.0, f64::max)
+        })
+        .collect();
+    (p_perm, single, step)
+}
+
+/// Single-step and step-down maxT over complete and masked Spearman rows
+/// against all 5040 orderings in memory, on riffle's documented common
+/// scale (the rho of N samples with the same t as rho on the n observed).
+#[test]
+fn spearman_maxt_over_complete_and_masked_rows_equals_brute_force() {
+    let rows = spearman_rows();
+    let all = orderings(7);
+    let big_n = 7.0;
+    let scale = |x: &[f64], order: &[usize]| -> f64 {
+        let n = x.iter().filter(|v| !v.is_nan()).count() as f64;
+        let r = observed_rho(x, &TIED_TRAIT, order);
+        if r.abs() >= 1.0 {
+            return 1.0;
+        }
+        let t2 = r * r * (n - 2.0) / (1.0 - r * r);
+        (t2 / (big_n - 2.0 + t2)).sqrt()
+    };
+    // The observed ordering is one of the columns.
+    let null: Vec<Vec<f64>> = rows
+        .iter()
+        .map(|x| all.iter().map(|order| scale(x, order)).collect())
+        .collect();
+    let identity: Vec<usize> = (0..7).collect();
+    let obs: Vec<f64> = rows.iter().map(|x| scale(x, &identity)).collect();
+    let (p_perm, single, step) = brute_force_maxt(&obs, &null);
+    let dir = tempfile::tempdir().unwrap();
+    for chunk in [3, 100] {
+        let mut o = options(dir.path());
+        o.test = TestKind::Spearman;
+        o.perms = 10_000;
+        o.chunk_rows = Some(chunk);
+        let table = Table::read(&scan_trait_values(&rows, &TIED_TRAIT, &o).results_path);
+        let got = [
+            table.f64s("p_perm"),
+            table.f64s("p_maxt_single"),
+            table.f64s("p_maxt"),
+        ];
+        for (name, (riffle, expected)) in ["p_perm", "single-step", "step-down"]
+            .iter()
+            .zip(got.iter().zip([&p_perm, &single, &step]))
+        {
+            for j in 0..rows.len() {
+                assert!(
+                    (riffle[j] - expected[j]).abs() < 1e-12,
+                    "{name} {j}: riffle {} brute force {}",
+                    riffle[j],
+                    expected[j]
+                );
+            }
+        }
+    }
+}
+
+/// Ordinary least squares by the normal equations, solved by Gauss–Jordan
+/// elimination (textbook, independent of riffle's Gram–Schmidt): the
+/// coefficients, (X'X)^-1 and the residual sum of squares.
+fn least_squares(columns: &[Vec<f64>], y: &[f64]) -> (Vec<f64>, Vec<Vec<f64>>, f64) {
+    let p = columns.len();
+    let n = y.len();
+    let mut a = vec![vec![0.0; 2 * p]; p];
+    for r in 0..p {
+        for c in 0..p {
+            a[r][c] = (0..n).map(|i| columns[r][i] * columns[c][i]).sum();
+        }
+        a[r][p + r] = 1.0;
+    }
+    for c in 0..p {
+        let pivot = (c..p)
+            .max_by(|&x, &y| a[x][c].abs().total_cmp(&a[y][c].abs()))
+            .unwrap();
+        a.swap(c, pivot);
+        let d = a[c][c];
+        a[c].iter_mut().for_each(|v| *v /= d);
+        for r in 0..p {
+            if r != c {
+                let f = a[r][c];
+                let row_c = a[c].clone();
+                a[r].iter_mut().zip(&row_c).for_each(|(v, w)| *v -= f * w);
+            }
+        }
+    }
+    let inverse: Vec<Vec<f64>> = a.iter().map(|row| row[p..].to_vec()).collect();
+    let xty: Vec<f64> = (0..p)
+        .map(|r| (0..n).map(|i| columns[r][i] * y[i]).sum())
+        .collect();
+    let beta: Vec<f64> = (0..p)
+        .map(|r| (0..p).map(|c| inverse[r][c] * xty[c]).sum())
+        .collect();
+    let rss = (0..n)
+        .map(|i| {
+            let fit: f64 = (0..p).map(|r| beta[r] * columns[r][i]).sum();
+            (y[i] - fit) * (y[i] - fit)
+        })
+        .sum();
+    (beta, inverse, rss)
+}
+
+/// The t of column 0 (one effect column) or the extra-sum-of-squares F of
+/// the first `effects` columns, after the remaining (nuisance) columns.
+fn ols_statistic(columns: &[Vec<f64>], effects: usize, y: &[f64]) -> f64 {
+    let (beta, inverse, rss) = least_squares(columns, y);
+    let df = (y.len() - columns.len()) as f64;
+    if effects == 1 {
+        return beta[0] / (rss / df * inverse[0][0]).sqrt();
+    }
+    let (_, _, reduced) = least_squares(&columns[effects..], y);
+    ((reduced - rss) / effects as f64) / (rss / df)
+}
+
+/// Every permutation of `units` that keeps each unit in its stratum
+/// (common practice, no single source): perm[k] is the unit whose residual
+/// unit `units[k]` takes.
+fn stratum_permutations(units: &[usize], strata: &[usize]) -> Vec<Vec<usize>> {
+    let mut out = vec![Vec::new()];
+    for k in 0..units.len() {
+        let mut next = Vec::new();
+        for partial in &out {
+            for &u in units {
+                if strata[u] == strata[units[k]] && !partial.contains(&u) {
+                    let mut p = partial.clone();
+                    p.push(u);
+                    next.push(p);
+                }
+            }
+        }
+        out = next;
+    }
+    out
+}
+
+/// Freedman–Lane on the observed samples alone (Winkler, Ridgway, Webster,
+/// Smith & Nichols 2014, NeuroImage 92): the model fitted on the observed
+/// rows (design columns that are all zero there dropped), and every
+/// permutation of their nuisance residuals within strata. Returns the
+/// observed statistic, the exact p (|t| or F) and the effect (coefficient
+/// or partial eta squared).
+fn freedman_lane_observed(
+    design: &[Vec<f64>],
+    effects: usize,
+    y: &[f64],
+    strata: &[usize],
+) -> (f64, f64, f64) {
+    let units: Vec<usize> = (0..y.len()).filter(|&i| !y[i].is_nan()).collect();
+    let columns: Vec<Vec<f64>> = design
+        .iter()
+        .map(|c| units.iter().map(|&i| c[i]).collect::<Vec<f64>>())
+        .filter(|c| c.iter().any(|&v| v != 0.0))
+        .collect();
+    let yo: Vec<f64> = units.iter().map(|&i| y[i]).collect();
+    let nuisance = &columns[effects..];
+    let (gamma, _, _) = least_squares(nuisance, &yo);
+    let fit: Vec<f64> = (0..yo.len())
+        .map(|k| (0..nuisance.len()).map(|r| gamma[r] * nuisance[r][k]).sum())
+        .collect();
+    let resid: Vec<f64> = yo.iter().zip(&fit).map(|(a, b)| a - b).collect();
+    let stat = |v: &[f64]| {
+        let s = ols_statistic(&columns, effects, v);
+        if effects == 1 {
+            s.abs()
+        } else {
+            s
+        }
+    };
+    let observed = stat(&yo);
+    let position = |u: usize| units.iter().position(|&x| x == u).unwrap();
+    let perms = stratum_permutations(&units, strata);
+    let reached = perms
+        .iter()
+        .filter(|perm| {
+            let y_star: Vec<f64> = (0..yo.len())
+                .map(|k| resid[position(perm[k])] + fit[k])
+                .collect();
+            stat(&y_star) >= observed - 1e-9 * (1.0 + observed)
+        })
+        .count();
+    let (beta, _, rss) = least_squares(&columns, &yo);
+    let effect = if effects == 1 {
+        beta[0]
+    } else {
+        let (_, _, reduced) = least_squares(nuisance, &yo);
+        (reduced - rss) / reduced
+    };
+    (
+        ols_statistic(&columns, effects, &yo),
+        reached as f64 / perms.len() as f64,
+        effect,
+    )
+}
+
+fn model_sheet(classes: &[usize], age: &[f64], site: &[&str], batch: &[usize]) -> String {
+    let mut text = String::from("sample\tgroup\tage\tsite\tbatch\n");
+    for i in 0..classes.len() {
+        text.push_str(&format!(
+            "s{i}\tg{}\t{}\t{}\tb{}\n",
+            classes[i], age[i], site[i], batch[i]
+        ));
+    }
+    text
+}
+
+/// Covariate designs with missing values (two groups: t; three groups: F;
+/// a trait with strata: t): every statistic, p_param, effect and exact
+/// p_perm equals an OLS fit and a brute-force Freedman–Lane over the
+/// observed samples alone. The site level `y` is missing entirely from one
+/// row (its column drops out of that row's model).
+#[test]
+fn covariates_with_missing_values_equal_brute_force_on_the_observed_samples() {
+    use statrs::distribution::{ContinuousCDF, FisherSnedecor, StudentsT};
+    let age = [31.0, 45.0, 52.0, 38.0, 61.0, 29.0, 50.0, 44.0];
+    let site = ["x", "y", "x", "x", "x", "y", "x", "x"];
+    let batch = [0usize, 0, 0, 0, 1, 1, 1, 1];
+    let site_y: Vec<f64> = site
+        .iter()
+        .map(|&s| f64::from(u8::from(s == "y")))
+        .collect();
+    let mut rng = TestRng::new(77);
+    let cases: [(&str, [usize; 8], TestKind, bool); 3] = [
+        (
+            "two groups",
+            [0, 1, 0, 1, 1, 0, 1, 0],
+            TestKind::Student,
+            false,
+        ),
+        (
+            "three groups",
+            [0, 1, 2, 0, 1, 2, 1, 0],
+            TestKind::Anova,
+            false,
+        ),
+        ("trait, strata", [0; 8], TestKind::Pearson, true),
+    ];
+    for (name, classes, test, trait_design) in cases {
+        let effect_columns: Vec<Vec<f64>> = if trait_design {
+            vec![age.iter().map(|a| a * 0.1 + (a * 7.0) % 3.0).collect()]
+        } else {
+            let k = classes.iter().max().unwrap() + 1;
+            (1..k)
+                .map(|level| {
+                    classes
+                        .iter()
+                        .map(|&c| f64::from(u8::from(c == level)))
+                        .collect()
+                })
+                .collect()
+        };
+        let effects = effect_columns.len();
+        let mut sheet = model_sheet(&classes, &age, &site, &batch);
+        if trait_design {
+            sheet = sheet.replace("\tgroup\t", "\tscore\t");
+            for (i, v) in effect_columns[0].iter().enumerate() {
+                sheet = sheet.replacen(&format!("s{i}\tg0\t"), &format!("s{i}\t{v}\t"), 1);
+            }
+        }
+        let rows: Vec<Vec<f64>> = (0..7)
+            .map(|f| {
+                let mut row: Vec<f64> = (0..8)
+                    .map(|i| {
+                        let signal: f64 = effect_columns.iter().map(|x| x[i]).sum();
+                        0.03 * age[i] + 0.4 * site_y[i] + rng.normal() + 0.7 * f as f64 * signal
+                    })
+                    .collect();
+                match f {
+                    0 => {}
+                    // Both site-y samples missing.
+                    1 => {
+                        row[1] = f64::NAN;
+                        row[5] = f64::NAN;
+                    }
+                    _ => row[(3 * f) % 8] = f64::NAN,
+                }
+                row
+            })
+            .collect();
+        let dir = tempfile::tempdir().unwrap();
+        let mut o = options(dir.path());
+        o.test = test;
+        o.perms = 50_000;
+        o.min_observed = 2;
+        o.covariates = vec!["age".into(), "site".into()];
+        let columns = riffle::design::DesignColumns {
+            group: (!trait_design).then(|| "group".into()),
+            trait_column: trait_design.then(|| "score".into()),
+            strata: trait_design.then(|| "batch".into()),
+            covariates: o.covariates.clone(),
+            ..Default::default()
+        };
+        let kind = if trait_design {
+            riffle::stats::DesignKind::Trait
+        } else {
+            riffle::stats::DesignKind::Groups
+        };
+        let summary = common::scan_with_sheet(&rows, &sheet, kind, &columns, &o);
+        assert!(summary.exact, "{name}");
+        let table = Table::read(&summary.results_path);
+        let note = table.text("note");
+        // --min-observed 2: two observed values in every group.
+        let few = |y: &[f64]| {
+            let k = classes.iter().max().unwrap() + 1;
+            (0..k).any(|level| {
+                (0..8)
+                    .filter(|&i| classes[i] == level && !y[i].is_nan())
+                    .count()
+                    < 2
+            })
+        };
+        let mut tested = 0;
+        for (f, y) in rows.iter().enumerate() {
+            if few(y) {
+                assert_eq!(note[f], "too few observed values", "{name} {f}");
+            } else {
+                assert_eq!(note[f], "", "{name} {f}");
+                tested += 1;
+            }
+        }
+        assert!(tested >= 4, "{name}: {tested}");
+        let (p_perm, p_param, stat, effect) = (
+            table.f64s("p_perm"),
+            table.f64s("p_param"),
+            table.f64s("statistic"),
+            table.f64s("effect"),
+        );
+        let mut design: Vec<Vec<f64>> = effect_columns.clone();
+        design.push(vec![1.0; 8]);
+        design.push(age.to_vec());
+        design.push(site_y.clone());
+        let strata: Vec<usize> = if trait_design {
+            batch.to_vec()
+        } else {
+            vec![0; 8]
+        };
+        for (f, y) in rows.iter().enumerate() {
+            if few(y) {
+                continue;
+            }
+            let (s, p, e) = freedman_lane_observed(&design, effects, y, &strata);
+            let m = y.iter().filter(|v| !v.is_nan()).count();
+            let p_cols = design.len() - usize::from(f == 1);
+            let df = (m - p_cols) as f64;
+            let reference = if effects == 1 {
+                2.0 * StudentsT::new(0.0, 1.0, df).unwrap().sf(s.abs())
+            } else {
+                FisherSnedecor::new(effects as f64, df).unwrap().sf(s)
+            };
+            let tol = 1e-9 * (1.0 + s.abs());
+            assert!((stat[f] - s).abs() < tol, "{name} {f}: {} vs {s}", stat[f]);
+            assert!(
+                (effect[f] - e).abs() < 1e-9,
+                "{name} {f}: effect {} vs {e}",
+                effect[f]
+            );
+            assert!((p_param[f] - reference).abs() < 1e-9, "{name} {f}: p_param");
+            assert!(
+                (p_perm[f] - p).abs() < 1e-12,
+                "{name} feature {f}: riffle {} brute force {p}",
+                p_perm[f]
+            );
+        }
+    }
+}
+
+/// The permutation of the observed units `units` induced by the relabelling
+/// `perm` of all units (unit i takes the residual of `perm[i]`): riffle's
+/// documented restriction by first return, unit i of `units` takes the
+/// residual of the first observed unit on perm[i], perm[perm[i]], ...
+fn first_return(perm: &[usize], units: &[usize]) -> Vec<usize> {
+    units
+        .iter()
+        .map(|&i| {
+            let mut j = perm[i];
+            while !units.contains(&j) {
+                j = perm[j];
+            }
+            j
+        })
+        .collect()
+}
+
+/// |t| of the group effect after age, fitted on the observed samples of y,
+/// with the nuisance residuals moved by `perm` restricted to them.
+fn masked_model_t(group: &[f64], age: &[f64], y: &[f64], perm: &[usize]) -> f64 {
+    let units: Vec<usize> = (0..y.len()).filter(|&i| !y[i].is_nan()).collect();
+    let take = |c: &[f64]| -> Vec<f64> { units.iter().map(|&i| c[i]).collect() };
+    let nuisance = vec![vec![1.0; units.len()], take(age)];
+    let yo = take(y);
+    let (gamma, _, _) = least_squares(&nuisance, &yo);
+    let fit: Vec<f64> = (0..yo.len())
+        .map(|k| gamma[0] + gamma[1] * nuisance[1][k])
+        .collect();
+    let resid: Vec<f64> = yo.iter().zip(&fit).map(|(a, b)| a - b).collect();
+    let position = |u: usize| units.iter().position(|&x| x == u).unwrap();
+    let induced = first_return(perm, &units);
+    let y_star: Vec<f64> = (0..yo.len())
+        .map(|k| resid[position(induced[k])] + fit[k])
+        .collect();
+    let columns = vec![take(group), nuisance[0].clone(), nuisance[1].clone()];
+    ols_statistic(&columns, 1, &y_star).abs()
+}
+
+/// Single-step and step-down maxT over complete and masked rows of a
+/// covariate design (two groups after age) against all 7! relabelings held
+/// in memory: complete rows permute all residuals, masked rows the
+/// observed ones by the restriction of the same relabelling; the common
+/// scale is the model's t (riffle's documented choice).
+#[test]
+fn covariate_maxt_over_complete_and_masked_rows_equals_brute_force() {
+    let classes = [0usize, 1, 0, 1, 1, 0, 1];
+    let age = [31.0, 45.0, 52.0, 38.0, 61.0, 29.0, 50.0];
+    let group: Vec<f64> = classes.iter().map(|&c| c as f64).collect();
+    let mut rng = TestRng::new(5);
+    let rows: Vec<Vec<f64>> = (0..9)
+        .map(|f| {
+            let mut row: Vec<f64> = (0..7)
+                .map(|i| 0.05 * age[i] + rng.normal() + 0.5 * f as f64 * group[i])
+                .collect();
+            if f % 3 != 0 {
+                row[(2 * f) % 7] = f64::NAN;
+            }
+            row
+        })
+        .collect();
+    let all = orderings(7);
+    let null: Vec<Vec<f64>> = rows
+        .iter()
+        .map(|y| {
+            all.iter()
+                .map(|perm| masked_model_t(&group, &age, y, perm))
+                .collect()
+        })
+        .collect();
+    let identity: Vec<usize> = (0..7).collect();
+    let obs: Vec<f64> = rows
+        .iter()
+        .map(|y| masked_model_t(&group, &age, y, &identity))
+        .collect();
+    let (p_perm, single, step) = brute_force_maxt(&obs, &null);
+    let mut sheet = String::from("sample\tgroup\tage\n");
+    for i in 0..7 {
+        sheet.push_str(&format!("s{i}\tg{}\t{}\n", classes[i], age[i]));
+    }
+    let dir = tempfile::tempdir().unwrap();
+    for chunk in [2, 100] {
+        let mut o = options(dir.path());
+        o.test = TestKind::Student;
+        o.perms = 10_000;
+        o.min_observed = 2;
+        o.chunk_rows = Some(chunk);
+        o.covariates = vec!["age".into()];
+        let columns = riffle::design::DesignColumns {
+            group: Some("group".into()),
+            covariates: o.covariates.clone(),
+            ..Default::default()
+        };
+        let summary = common::scan_with_sheet(
+            &rows,
+            &sheet,
+            riffle::stats::DesignKind::Groups,
+            &columns,
+            &o,
+        );
+        assert_eq!(summary.tested as usize, rows.len());
+        let table = Table::read(&summary.results_path);
+        let got = [
+            table.f64s("p_perm"),
+            table.f64s("p_maxt_single"),
+            table.f64s("p_maxt"),
+        ];
+        for (name, (riffle, expected)) in ["p_perm", "single-step", "step-down"]
+            .iter()
+            .zip(got.iter().zip([&p_perm, &single, &step]))
+        {
+            for j in 0..rows.len() {
+                assert!(
+                    (riffle[j] - expected[j]).abs() < 1e-12,
+                    "{name} {j}: riffle {} brute force {}",
+                    riffle[j],
+                    expected[j]
+                );
+            }
+        }
+    }
+}
+
+/// Spearman and a covariate design (trait after age and a text covariate)
+/// on 36 samples with up to 30% missing and ties: exceedance counts equal
+/// a brute-force count over the same drawn relabelings (rho by textbook
+/// mid-ranks; the model by OLS on the observed samples), results do not
+/// depend on threads, chunk size or the pooled null, complete rows keep
+/// every value they have alone, and sequential stopping and the tail fit
+/// give the same bytes at any thread count.
+#[test]
+fn spearman_and_covariate_rows_with_missing_values_count_exactly_and_are_deterministic() {
+    use riffle::design::{DesignColumns, SampleSheet, StudyDesign};
+    let big_n = 36usize;
+    let mut rng = TestRng::new(9);
+    let score: Vec<f64> = (0..big_n)
+        .map(|_| (5.0 + 2.0 * rng.normal()).round())
+        .collect();
+    let age: Vec<f64> = (0..big_n).map(|_| 50.0 + 10.0 * rng.normal()).collect();
+    let site: Vec<&str> = (0..big_n).map(|i| ["a", "b", "c"][i % 3]).collect();
+    let mut sheet_text = String::from("sample\tscore\tage\tsite\n");
+    for i in 0..big_n {
+        sheet_text.push_str(&format!("s{i}\t{}\t{}\t{}\n", score[i], age[i], site[i]));
+    }
+    let rows: Vec<Vec<f64>> = (0..48)
+        .map(|f| {
+            let missing = [0.0, 0.1, 0.3][f % 3];
+            let slope = [0.0, 0.2, 0.6][f / 3 % 3];
+            (0..big_n)
+                .map(|i| {
+                    if rng.uniform() < missing {
+                        f64::NAN
+                    } else {
+                        let v = 0.05 * age[i] + slope * score[i] + rng.normal();
+                        if f % 4 == 0 {
+                            v.round()
+                        } else {
+                            v
+                        }
+                    }
+                })
+                .collect()
+        })
+        .collect();
+    let sheet = SampleSheet::parse(
+        std::path::Path::new("sheet.tsv"),
+        sheet_text.as_bytes(),
+        "sample",
+    )
+    .unwrap();
+    let (perms, seed) = (300, 4);
+    for covariates in [false, true] {
+        let columns = DesignColumns {
+            trait_column: Some("score".into()),
+            covariates: if covariates {
+                vec!["age".into(), "site".into()]
+            } else {
+                Vec::new()
+            },
+            ..Default::default()
+        };
+        let design =
+            StudyDesign::from_sheet(&sheet, riffle::stats::DesignKind::Trait, &columns).unwrap();
+        let classes = design.trait_classes();
+        let relabel = Relabelings::generate(&design.scheme(&classes), perms, seed);
+        let site_level =
+            |l: &str| -> Vec<f64> { site.iter().map(|&s| f64::from(u8::from(s == l))).collect() };
+        // Oriented (two-sided) statistic of row x as unit i takes trait
+        // value (residual) of unit sources[i].
+        let stat = |x: &[f64], sources: &[usize]| -> f64 {
+            if !covariates {
+                let order: Vec<usize> = sources.to_vec();
+                return observed_rho(x, &score, &order).abs();
+            }
+            let units: Vec<usize> = (0..big_n).filter(|&i| !x[i].is_nan()).collect();
+            let take = |c: &[f64]| -> Vec<f64> { units.iter().map(|&i| c[i]).collect() };
+            let nuisance = vec![
+                vec![1.0; units.len()],
+                take(&age),
+                take(&site_level("b")),
+                take(&site_level("c")),
+            ];
+            let yo = take(x);
+            let (gamma, _, _) = least_squares(&nuisance, &yo);
+            let fit: Vec<f64> = (0..yo.len())
+                .map(|k| (0..4).map(|r| gamma[r] * nuisance[r][k]).sum())
+                .collect();
+            let resid: Vec<f64> = yo.iter().zip(&fit).map(|(a, b)| a - b).collect();
+            let induced = first_return(sources, &units);
+            let position = |u: usize| units.iter().position(|&x| x == u).unwrap();
+            let y_star: Vec<f64> = (0..yo.len())
+                .map(|k| resid[position(induced[k])] + fit[k])
+                .collect();
+            let mut full = vec![take(&score)];
+            full.extend(nuisance);
+            ols_statistic(&full, 1, &y_star).abs()
+        };
+        let run = |threads: usize, chunk: usize, rows: &[Vec<f64>], extra: &str| {
+            let dir = tempfile::tempdir().unwrap();
+            let mut o = options(dir.path());
+            o.test = TestKind::Spearman;
+            if covariates {
+                o.test = TestKind::Pearson;
+                o.covariates = columns.covariates.clone();
+            }
+            o.perms = perms;
+            o.seed = seed;
+            o.threads = threads;
+            o.chunk_rows = Some(chunk);
+            o.pooled_null = extra == "pooled";
+            if extra == "sequential" {
+                o.stop_after = Some(5);
+            }
+            if extra == "tail" {
+                o.tail_fit = Some(10);
+            }
+            let summary = common::scan_with_sheet(
+                rows,
+                &sheet_text,
+                riffle::stats::DesignKind::Trait,
+                &columns,
+                &o,
+            );
+            let bytes = std::fs::read(&summary.results_path).unwrap();
+            (Table::read(&summary.results_path), bytes, dir)
+        };
+        let (table, bytes, _dir) = run(2, 7, &rows, "pooled");
+        let exceed = table.f64s("n_exceed");
+        let note = table.text("note");
+        let identity: Vec<usize> = (0..big_n).collect();
+        // Sequential stopping at h = 5 (Besag & Clifford 1991): L is the
+        // position of the 5th exceedance in relabelling order, else all B.
+        let (sequential, _, _ds) = run(2, 7, &rows, "sequential");
+        let (seq_exceed, seq_used) = (sequential.f64s("n_exceed"), sequential.f64s("n_relabel"));
+        let mut tested = 0;
+        for (f, x) in rows.iter().enumerate() {
+            if !note[f].is_empty() {
+                continue;
+            }
+            tested += 1;
+            let obs = stat(x, &identity);
+            let hits: Vec<bool> = (0..relabel.count)
+                .map(|b| {
+                    let sources: Vec<usize> =
+                        relabel.source_row(b).iter().map(|&s| s as usize).collect();
+                    stat(x, &sources) >= obs - 1e-9 * (1.0 + obs)
+                })
+                .collect();
+            let count = hits.iter().filter(|&&h| h).count();
+            assert_eq!(
+                exceed[f], count as f64,
+                "covariates {covariates} feature {f}"
+            );
+            let fifth = hits
+                .iter()
+                .enumerate()
+                .filter(|(_, &h)| h)
+                .nth(4)
+                .map(|(b, _)| b + 1);
+            let (e, l) = match fifth {
+                Some(l) => (5, l),
+                None => (count, relabel.count),
+            };
+            assert_eq!(
+                (seq_exceed[f], seq_used[f]),
+                (e as f64, l as f64),
+                "sequential, covariates {covariates} feature {f}"
+            );
+        }
+        assert_eq!(tested, rows.len(), "covariates {covariates}");
+        let (_, single, _d) = run(1, 5000, &rows, "pooled");
+        assert!(
+            single == bytes,
+            "covariates {covariates}: threads, chunk sizes"
+        );
+        let (_, plain, _d) = run(2, 5, &rows, "");
+        let (_, plain1, _d) = run(1, 100, &rows, "");
+        assert!(
+            plain == plain1,
+            "covariates {covariates}: without pooled null"
+        );
+        for extra in ["sequential", "tail"] {
+            let (_, a, _d1) = run(2, 5, &rows, extra);
+            let (_, b, _d2) = run(1, 1000, &rows, extra);
+            assert!(a == b, "covariates {covariates}: {extra}");
+        }
+        let complete: Vec<Vec<f64>> = rows.iter().step_by(3).cloned().collect();
+        assert!(complete.iter().flatten().all(|v| !v.is_nan()));
+        let interleaved: Vec<Vec<f64>> = rows.clone();
+        let (alone, _, _d1) = run(2, 7, &complete, "");
+        let (mixed, _, _d2) = run(2, 7, &interleaved, "");
+        for column in ["statistic", "p_param", "p_perm", "n_exceed", "effect"] {
+            let (a, b) = (alone.f64s(column), mixed.f64s(column));
+            for (k, value) in a.iter().enumerate() {
+                let v = b[3 * k];
+                assert_eq!(value.to_bits(), v.to_bits(), "{column} {k}");
+            }
+        }
+    }
+}
+
+/// Covariate designs: `--min-observed` per group, two residual df in the
+/// refitted model, and an effect that the covariates explain on the
+/// observed samples are each reported untested with their reason;
+/// Spearman needs three observed samples.
+#[test]
+fn covariate_and_spearman_rows_name_why_they_are_untested() {
+    let classes = [0usize, 0, 0, 0, 1, 1, 1, 1];
+    // Site matches the group except on samples 3 and 4.
+    let site = ["x", "x", "x", "y", "x", "y", "y", "y"];
+    let age = [31.0, 45.0, 52.0, 38.0, 61.0, 29.0, 50.0, 44.0];
+    let mut sheet = String::from("sample\tgroup\tage\tsite\n");
+    for i in 0..8 {
+        sheet.push_str(&format!("s{i}\tg{}\t{}\t{}\n", classes[i], age[i], site[i]));
+    }
+    let mut rng = TestRng::new(31);
+    let base: Vec<f64> = (0..8).map(|_| rng.normal()).collect();
+    let with_missing = |missing: &[usize]| -> Vec<f64> {
+        (0..8)
+            .map(|i| {
+                if missing.contains(&i) {
+                    f64::NAN
+                } else {
+                    base[i]
+                }
+            })
+            .collect()
+    };
+    let rows = vec![
+        with_missing(&[]),
+        with_missing(&[0]),
+        // Group A keeps two observed values.
+        with_missing(&[0, 1]),
+        // Site equals the group on the observed samples.
+        with_missing(&[3, 4]),
+        // Four observed samples, four model columns.
+        with_missing(&[0, 1, 5, 6]),
+    ];
+    let dir = tempfile::tempdir().unwrap();
+    let mut o = options(dir.path());
+    o.test = TestKind::Student;
+    o.perms = 200;
+    o.covariates = vec!["age".into(), "site".into()];
+    let columns = riffle::design::DesignColumns {
+        group: Some("group".into()),
+        covariates: o.covariates.clone(),
+        ..Default::default()
+    };
+    let run = |o: &riffle::scan::ScanOptions| {
+        let summary = common::scan_with_sheet(
+            &rows,
+            &sheet,
+            riffle::stats::DesignKind::Groups,
+            &columns,
+            o,
+        );
+        Table::read(&summary.results_path)
+    };
+    let table = run(&o);
+    let note = table.text("note");
+    assert_eq!(note[0], "");
+    assert_eq!(note[1], "");
+    assert_eq!(note[2], "too few observed values");
+    assert_eq!(
+        note[3],
+        "effect explained by the covariates on the observed values"
+    );
+    assert_eq!(note[4], "too few observed values");
+    assert!(table.f64s("p_perm")[3].is_nan());
+    assert_eq!(table.f64s("n_a")[1], 3.0);
+    assert_eq!(table.f64s("n_b")[1], 4.0);
+    o.min_observed = 2;
+    let note = run(&o).text("note").to_vec();
+    assert_eq!(
+        note[2], "",
+        "two observed values per group with --min-observed 2"
+    );
+    assert_eq!(note[4], "too few observed values", "df below two");
+    // Spearman: three observed samples at least, whatever --min-observed.
+    let trait_rows = vec![
+        vec![1.0, f64::NAN, 3.0, f64::NAN, 2.0, f64::NAN, f64::NAN],
+        vec![1.0, f64::NAN, 3.0, f64::NAN, f64::NAN, f64::NAN, f64::NAN],
+    ];
+    let mut o = options(dir.path());
+    o.test = TestKind::Spearman;
+    o.perms = 99;
+    o.min_observed = 2;
+    let table = Table::read(&scan_trait_values(&trait_rows, &TIED_TRAIT, &o).results_path);
+    assert_eq!(table.text("note")[0], "");
+    assert_eq!(table.text("note")[1], "too few observed values");
+}
+
+/// Shards and merge give the single run's bytes for masked Spearman and
+/// covariate rows (step-down maxT across shards, pooled null).
+#[test]
+fn shards_with_masked_spearman_and_covariate_rows_merge_to_the_single_run() {
+    let dir = tempfile::tempdir().unwrap();
+    let path = |name: &str| dir.path().join(name).to_str().unwrap().to_string();
+    let (matrix, plain) = (path("m.arrow"), path("plain.tsv"));
+    let out = common::riffle(&[
+        "simulate",
+        "--out",
+        &matrix,
+        "--sheet",
+        &plain,
+        "--features",
+        "400",
+        "--group-sizes",
+        "8,8",
+        "--missing-fraction",
+        "0.1",
+        "--seed",
+        "3",
+    ]);
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    // Invented covariates and a tied score beside the simulated groups.
+    let sheet = path("sheet.tsv");
+    let text = std::fs::read_to_string(&plain).unwrap();
+    let mut lines = text.lines();
+    let mut extended = format!("{}\tage\tsite\tscore\n", lines.next().unwrap());
+    for (i, line) in lines.enumerate() {
+        extended.push_str(&format!(
+            "{line}\t{}\ts{}\t{}\n",
+            30 + (i * 17) % 41,
+            i % 3,
+            (i * 7) % 5
+        ));
+    }
+    std::fs::write(&sheet, extended).unwrap();
+    for (label, design) in [
+        (
+            "spearman",
+            ["--trait", "score", "--test", "spearman", "--pooled-null"].as_slice(),
+        ),
+        (
+            "covariates",
+            [
+                "--group",
+                "group",
+                "--test",
+                "student",
+                "--covariates",
+                "age,site",
+            ]
+            .as_slice(),
+        ),
+    ] {
+        let scan = |out_dir: &str, shard: Option<&str>| {
+            let mut args = vec![
+                "scan",
+                "--matrix",
+                &matrix,
+                "--samples",
+                &sheet,
+                "--perms",
+                "300",
+                "--format",
+                "tsv",
+                "--no-report",
+                "--quiet",
+                "--out",
+                out_dir,
+            ];
+            args.extend(design);
+            if let Some(s) = shard {
+                args.extend(["--shard", s]);
+            }
+            let out = common::riffle(&args);
+            assert!(
+                out.status.success(),
+                "{}",
+                String::from_utf8_lossy(&out.stderr)
+            );
+        };
+        let name = |s: &str| path(&format!("{label}-{s}"));
+        scan(&name("single"), None);
+        scan(&name("one"), Some("1/2"));
+        scan(&name("two"), Some("2/2"));
+        let out = common::riffle(&[
+            "merge",
+            &name("one"),
+            &name("two"),
+            "--out",
+            &name("merged"),
+            "--quiet",
+        ]);
+        assert!(
+            out.status.success(),
+            "{}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+        let single = format!("{}/results.tsv", name("single"));
+        let a = std::fs::read(&single).unwrap();
+        let b = std::fs::read(format!("{}/results.tsv", name("merged"))).unwrap();
+        assert!(a == b, "{label}: merged shards differ from the single run");
+        let table = Table::read(std::path::Path::new(&single));
+        let tested = table.text("note").iter().filter(|n| n.is_empty()).count();
+        assert!(tested > 390, "{label}: {tested} tested");
+        let observed: f64 = table.f64s("n_a").iter().chain(&table.f64s("n_b")).sum();
+        assert!(
+            observed < 0.95 * 400.0 * 16.0,
+            "{label}: the matrix has missing values"
+        );
     }
 }

@@ -21,9 +21,12 @@ fn scan_command(dir: &Path, out: &Path, extra: &[&str]) -> Command {
         .arg(dir.join("m.arrow"))
         .arg("--samples")
         .arg(dir.join("sheet.tsv"))
+        .args(if extra.contains(&"spearman") {
+            ["--trait", "score"]
+        } else {
+            ["--group", "group"]
+        })
         .args([
-            "--group",
-            "group",
             "--perms",
             "1000",
             "--seed",
@@ -46,25 +49,50 @@ fn scan_command(dir: &Path, out: &Path, extra: &[&str]) -> Command {
 }
 
 fn kill_and_resume(extra: &[&str], seed: u64) {
+    kill_and_resume_on("80000", None, extra, seed);
+}
+
+/// `kill_and_resume` on `features` simulated features; with `missing`, that
+/// share of values missing and invented covariates (age, site) and a score
+/// added to the sheet.
+fn kill_and_resume_on(features: &str, missing: Option<&str>, extra: &[&str], seed: u64) {
     let dir = tempfile::tempdir().unwrap();
-    let o = riffle()
+    let mut simulate = riffle();
+    simulate
         .args(["simulate", "--out"])
         .arg(dir.path().join("m.arrow"))
         .arg("--sheet")
         .arg(dir.path().join("sheet.tsv"))
         .args([
             "--features",
-            "80000",
+            features,
             "--group-sizes",
             "12,12",
             "--effect-fraction",
             "0.01",
             "--seed",
             "8",
-        ])
-        .output()
-        .unwrap();
+        ]);
+    if let Some(share) = missing {
+        simulate.args(["--missing-fraction", share]);
+    }
+    let o = simulate.output().unwrap();
     assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    if missing.is_some() {
+        let path = dir.path().join("sheet.tsv");
+        let text = std::fs::read_to_string(&path).unwrap();
+        let mut lines = text.lines();
+        let mut sheet = format!("{}\tage\tsite\tscore\n", lines.next().unwrap());
+        for (i, line) in lines.enumerate() {
+            sheet.push_str(&format!(
+                "{line}\t{}\ts{}\t{}\n",
+                30 + (i * 17) % 41,
+                i % 3,
+                (i * 7) % 5
+            ));
+        }
+        std::fs::write(&path, sheet).unwrap();
+    }
 
     let reference = dir.path().join("reference");
     let started = Instant::now();
@@ -137,5 +165,30 @@ fn killed_sequential_scan_resumes_to_identical_bytes() {
     kill_and_resume(
         &["--stop-after", "10", "--perms", "20000", "--phipson-smyth"],
         3,
+    );
+}
+
+/// Rows with missing values in covariate and Spearman designs (the per-row
+/// f64 path) resume to the same bytes too.
+#[test]
+fn killed_scan_with_masked_covariate_and_spearman_rows_resumes_to_identical_bytes() {
+    kill_and_resume_on(
+        "6000",
+        Some("0.05"),
+        &[
+            "--test",
+            "student",
+            "--covariates",
+            "age,site",
+            "--perms",
+            "400",
+        ],
+        4,
+    );
+    kill_and_resume_on(
+        "6000",
+        Some("0.05"),
+        &["--test", "spearman", "--perms", "400"],
+        5,
     );
 }

@@ -27,6 +27,12 @@ pub struct LinearModel {
     pub df: f64,
     /// Names of the nuisance columns (for the run record).
     pub terms: Vec<String>,
+    /// The design columns before orthogonalization, units long: the
+    /// nuisance columns (intercept first) and the effect columns. A feature
+    /// with missing values refits the model on its observed units from them
+    /// (`restricted`).
+    pub raw_nuisance: Vec<Vec<f64>>,
+    pub raw_effects: Vec<Vec<f64>>,
 }
 
 impl LinearModel {
@@ -188,6 +194,62 @@ impl LinearModel {
             effect_norm: norm,
             df,
             terms,
+            raw_nuisance: columns.into_iter().map(|(_, c)| c).collect(),
+            raw_effects: xs.to_vec(),
+        })
+    }
+
+    /// The model refitted on the units `observed` (ascending) of a feature
+    /// with missing values. Nuisance columns that add nothing on those
+    /// units (a covariate level none of them has, a covariate constant on
+    /// them) are dropped: the nuisance span, and so every fit, is the same
+    /// without them, and the residual df count only what is left (as a
+    /// least-squares fit by pseudo-inverse counts the rank). `None` when
+    /// the effect (or one of its columns) is explained by the covariates on
+    /// these units, or fewer than two residual df remain.
+    pub fn restricted(&self, observed: &[usize]) -> std::result::Result<LinearModel, Unfit> {
+        let take = |c: &Vec<f64>| -> Vec<f64> { observed.iter().map(|&i| c[i]).collect() };
+        let mut basis: Vec<Vec<f64>> = Vec::new();
+        for column in &self.raw_nuisance {
+            if let Some(q) = orthogonal_remainder(&take(column), &basis) {
+                basis.push(q);
+            }
+        }
+        // A model without its design columns (itself refitted) has
+        // nothing to refit from.
+        let x = take(self.raw_effects.first().ok_or(Unfit::Confounded)?);
+        let mut residual = x.clone();
+        for q in &basis {
+            let c: f64 = q.iter().zip(&residual).map(|(a, b)| a * b).sum();
+            residual.iter_mut().zip(q).for_each(|(r, qi)| *r -= c * qi);
+        }
+        let norm = residual.iter().map(|v| v * v).sum::<f64>().sqrt();
+        let x_norm = x.iter().map(|v| v * v).sum::<f64>().sqrt();
+        if norm <= 1e-10 * x_norm.max(1e-300) {
+            return Err(Unfit::Confounded);
+        }
+        let effect_direction: Vec<f64> = residual.iter().map(|v| v / norm).collect();
+        let mut spanned = basis.clone();
+        spanned.push(effect_direction.clone());
+        let mut further_effects = Vec::new();
+        for x in self.raw_effects.iter().skip(1) {
+            let q = orthogonal_remainder(&take(x), &spanned).ok_or(Unfit::Confounded)?;
+            spanned.push(q.clone());
+            further_effects.push(q);
+        }
+        let df = observed.len() as f64 - spanned.len() as f64;
+        if df < 2.0 {
+            return Err(Unfit::TooFewUnits);
+        }
+        Ok(LinearModel {
+            nuisance_basis: basis,
+            effect_direction,
+            further_effects,
+            effect_norm: norm,
+            df,
+            terms: Vec::new(),
+            raw_nuisance: Vec::new(),
+            raw_effects: Vec::new(),
         })
     }
 
@@ -199,6 +261,15 @@ impl LinearModel {
             out.iter_mut().zip(q).for_each(|(r, qi)| *r -= c * qi);
         }
     }
+}
+
+/// Why a model cannot be refitted on a feature's observed units.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Unfit {
+    /// The effect is explained by the covariates there.
+    Confounded,
+    /// Fewer than two residual degrees of freedom.
+    TooFewUnits,
 }
 
 /// `column` minus its projection on an orthonormal `basis`, normalized;

@@ -13,6 +13,7 @@ use crate::stats::DesignKind;
 
 use crate::stats::TestKind;
 
+mod exact_rows;
 mod finish;
 mod histogram;
 mod masked;
@@ -154,8 +155,11 @@ impl Kernel {
     /// for the few features whose null tail is fitted (`crate::tail`).
     pub fn relabelled_stats(&self, z: &[f64], out: &mut Vec<f64>) {
         let masked = z.iter().any(|v| v.is_nan());
+        let mut cache = None;
         out.clear();
-        out.extend((0..self.relabel.count).map(|b| self.exact_stat(z, b, masked)));
+        out.extend(
+            (0..self.relabel.count).map(|b| self.exact_stat_cached(z, b, masked, &mut cache)),
+        );
     }
 
     /// Units per feature (samples, or pairs).
@@ -328,7 +332,7 @@ impl Kernel {
     /// f32 copies (and squares, for Welch) and error bands of packed rows.
     fn load_rows<'a>(
         &self,
-        standardized: &[f64],
+        standardized: &'a [f64],
         obs: &[f64],
         buffers: &'a mut RowBuffers,
     ) -> RowsView<'a> {
@@ -367,6 +371,8 @@ impl Kernel {
             }
             let (band, slack) = if missing == 0 {
                 (self.error_band(o, abs_sum), 0.0)
+            } else if self.exact_masked() {
+                self.exact_band(o)
             } else {
                 self.masked_band(o, abs_sum, n - missing)
             };
@@ -375,7 +381,9 @@ impl Kernel {
             buffers.observed.push(n - missing);
         }
         buffers.mask32.clear();
-        if buffers.observed.iter().any(|&m| m < n) && self.spec.test.design() != DesignKind::Paired
+        if buffers.observed.iter().any(|&m| m < n)
+            && self.spec.test.design() != DesignKind::Paired
+            && !self.exact_masked()
         {
             buffers.mask32.extend(
                 standardized
@@ -385,6 +393,7 @@ impl Kernel {
         }
         RowsView {
             rows: obs.len(),
+            z64: standardized,
             z32: &buffers.z32,
             mask32: &buffers.mask32,
             band: &buffers.band,
@@ -425,8 +434,10 @@ impl Kernel {
                 );
                 let observed = &rows.observed[row0..row0 + rt];
                 let masked = observed.iter().any(|&m| m < n);
-                // Sign flips keep the observed pairs: no mask GEMM.
-                let mask_gemm = masked && self.spec.test.design() != DesignKind::Paired;
+                // Sign flips keep the observed pairs: no mask GEMM; nor
+                // for rows computed one by one (`exact_rows`).
+                let exact = masked && self.exact_masked();
+                let mask_gemm = masked && !exact && self.spec.test.design() != DesignKind::Paired;
                 if mask_gemm {
                     tiles.masks.resize(ROW_TILE * COL_TILE * r, 0.0);
                     let masks = &mut tiles.masks;
@@ -444,7 +455,10 @@ impl Kernel {
                 let (sums, sq) = tiles.sums.split_at_mut(rt * ct * r);
                 for (i, &row_observed) in observed.iter().enumerate() {
                     let wide = &mut sums[i * ct * r..(i + 1) * ct * r];
-                    if masked && row_observed < n {
+                    if exact && row_observed < n {
+                        let k = row0 + i;
+                        self.exact_tile(&rows.z64[k * n..(k + 1) * n], col0, &mut wide[..ct]);
+                    } else if masked && row_observed < n {
                         let squares = if squares {
                             &sq[i * ct..(i + 1) * ct]
                         } else if trait_masked {
@@ -598,7 +612,9 @@ impl Kernel {
             }
             return count;
         }
-        let exact_at = |j: usize| self.exact_stat(z, col0 + j, row.slack > 0.0);
+        let mut cache = None;
+        let mut exact_at =
+            |j: usize| self.exact_stat_cached(z, col0 + j, row.slack > 0.0, &mut cache);
         if near {
             for (j, &v) in tile.iter().enumerate() {
                 if !(v > row.above || v < row.below) {
@@ -719,6 +735,8 @@ struct TileBuffers {
 
 struct RowsView<'a> {
     rows: usize,
+    /// The standardized rows (f64), for rows computed one by one.
+    z64: &'a [f64],
     z32: &'a [f32],
     mask32: &'a [f32],
     band: &'a [f64],

@@ -116,11 +116,14 @@ impl Kernel {
         need: u64,
     ) -> usize {
         let mut seen = 0u64;
+        let mut cache = None;
         for (j, &v) in tile.iter().enumerate() {
             // NaN is neither above nor below: decided in f64, as in count_row.
             let near = !(v > row.above || v < row.below);
             let hit = v > row.above
-                || (near && self.exact_stat(z, col0 + j, row.slack > 0.0) >= row.threshold);
+                || (near
+                    && self.exact_stat_cached(z, col0 + j, row.slack > 0.0, &mut cache)
+                        >= row.threshold);
             seen += u64::from(hit);
             if seen == need {
                 return j;

@@ -32,12 +32,6 @@ use super::prepare::{Assignment, PrepScratch, Prepared, Status, TestSpec, MAX_GR
 use super::{welch_t, DesignKind, GroupSums, Sizes, TestKind};
 
 impl TestSpec {
-    /// Whether features with missing values are tested on their observed
-    /// samples (otherwise they are reported untested, `missing values`).
-    pub fn supports_missing(&self) -> bool {
-        self.model.is_none() && self.test != TestKind::Spearman
-    }
-
     /// A row with NaN: the test on the observed values, with `z` the
     /// standardized observed values and NaN where missing.
     pub(super) fn prepare_masked(
@@ -47,6 +41,12 @@ impl TestSpec {
         z: &mut [f64],
         scratch: &mut PrepScratch,
     ) -> Prepared {
+        if let Some(model) = &self.model {
+            return self.prepare_masked_model(model, raw, z, scratch);
+        }
+        if self.test == TestKind::Spearman {
+            return self.prepare_masked_spearman(raw, z, scratch);
+        }
         if self.test.is_k_group() {
             return self.prepare_masked_k_groups(raw, labels, z, scratch);
         }
@@ -165,8 +165,15 @@ impl TestSpec {
     }
 
     /// Kernel statistic of a standardized row with NaN where missing, under
-    /// a relabelling (group, paired and Pearson tests), in f64.
+    /// a relabelling, in f64.
     pub fn masked_kernel_stat_with(&self, z: &[f64], assignment: Assignment<'_>) -> f64 {
+        if self.exact_masked() {
+            let sources = match assignment {
+                Assignment::Sources(s) => Some(s),
+                _ => None,
+            };
+            return self.exact_row(z).kernel_stat(self, sources);
+        }
         match assignment {
             Assignment::Flips(flips) => self.masked_paired_stat(z, Some(flips)),
             Assignment::Observed(_) if self.test.design() == DesignKind::Paired => {

@@ -15,8 +15,8 @@
 //! samples with the same t as r on n, r_eq^2 = t^2 / (N - 2 + t^2), i.e.
 //! r_eq = r sqrt((n - 2) / ((N - 2) (1 - r^2) + (n - 2) r^2)).
 //!
-//! Spearman is not masked: the trait's ranks among a feature's observed
-//! samples change with every relabelling, which no fixed weights express.
+//! Spearman's trait ranks among a feature's observed samples change with
+//! every relabelling, which no fixed weights express: `stats::masked_exact`.
 
 use super::prepare::{PrepScratch, Prepared, Status, TestSpec};
 use super::t_pvalue;

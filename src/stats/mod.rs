@@ -8,6 +8,7 @@
 //! mean difference and rank-sum, and the Welch t itself for Welch.
 
 pub mod masked;
+pub mod masked_exact;
 mod masked_paired;
 mod masked_trait;
 pub mod prepare;

@@ -15,11 +15,16 @@ use super::{
 pub enum Status {
     Tested = 0,
     Constant = 1,
-    MissingValues = 2,
+    // Code 2 (missing values in a design without masking) is retired, not
+    // reused: a spill written by an older version fails to read instead of
+    // being misread.
     NonFinite = 3,
     NoWithinVariance = 4,
     /// Fewer observed (non-missing) values than `--min-observed` in a group.
     TooFewObserved = 5,
+    /// Covariate designs: on the observed units the effect is explained by
+    /// the covariates.
+    Confounded = 6,
 }
 
 impl Status {
@@ -27,10 +32,10 @@ impl Status {
         Some(match code {
             0 => Status::Tested,
             1 => Status::Constant,
-            2 => Status::MissingValues,
             3 => Status::NonFinite,
             4 => Status::NoWithinVariance,
             5 => Status::TooFewObserved,
+            6 => Status::Confounded,
             _ => return None,
         })
     }
@@ -39,10 +44,10 @@ impl Status {
         match self {
             Status::Tested => "",
             Status::Constant => "constant",
-            Status::MissingValues => "missing values (not masked in this design)",
             Status::NonFinite => "infinite values",
             Status::NoWithinVariance => "no variance within groups",
             Status::TooFewObserved => "too few observed values",
+            Status::Confounded => "effect explained by the covariates on the observed values",
         }
     }
 }
@@ -357,10 +362,7 @@ impl TestSpec {
             return Prepared::untested(Status::NonFinite, f64::NAN);
         }
         if raw.iter().any(|v| v.is_nan()) {
-            if self.supports_missing() {
-                return self.prepare_masked(raw, labels, z, scratch);
-            }
-            return Prepared::untested(Status::MissingValues, f64::NAN);
+            return self.prepare_masked(raw, labels, z, scratch);
         }
         if let Some(model) = &self.model {
             return self.prepare_model(model, raw, labels, z);

@@ -14,6 +14,19 @@ pub fn relabelled_statistics(spec: &TestSpec, raw: &[f64], relabelings: &Relabel
     let n = spec.units();
     let mut z = vec![0.0; n];
     let mut scratch = PrepScratch::default();
+    if spec.model.is_some() && raw.iter().any(|v| v.is_nan()) {
+        // Freedman–Lane on the observed units (`stats::masked_exact`).
+        if spec.prepare(raw, &[], &mut z, &mut scratch).status != Status::Tested {
+            return vec![f64::NAN; relabelings.count];
+        }
+        let mut row = spec.exact_row(&z);
+        return (0..relabelings.count)
+            .map(|b| {
+                row.statistic(spec, Some(relabelings.source_row(b)))
+                    .unwrap_or(f64::NAN)
+            })
+            .collect();
+    }
     let mut values = raw.to_vec();
     let mut permuted = spec.clone();
     // Freedman–Lane: the nuisance fit stays, the residuals move.
@@ -85,18 +98,17 @@ pub fn model_reference(spec: &TestSpec, raw: &[f64], labels: &[u8]) -> ModelRefe
     let n = na + nb;
     let k = spec.group_sizes.len() as f64;
     if let Some(model) = &spec.model {
+        // With missing values: the df of the model refitted on them.
+        let df = spec.observed_model_df(raw).unwrap_or(model.df);
         if spec.model_f() {
             return ModelReference::FisherF {
                 df1: model.effect_columns() as f64,
-                df2: model.df,
+                df2: df,
             };
         }
-        return ModelReference::StudentT { df: model.df };
+        return ModelReference::StudentT { df };
     }
-    if spec.supports_missing()
-        && spec.test.design() == DesignKind::Paired
-        && raw.iter().any(|v| v.is_nan())
-    {
+    if spec.test.design() == DesignKind::Paired && raw.iter().any(|v| v.is_nan()) {
         // The test was on the observed pairs.
         let m = spec.sizes.n_a;
         let kept: Vec<usize> = (0..m)
@@ -115,15 +127,12 @@ pub fn model_reference(spec: &TestSpec, raw: &[f64], labels: &[u8]) -> ModelRefe
         };
         return model_reference(&observed, &values, labels);
     }
-    if spec.supports_missing()
-        && spec.test.design() == DesignKind::Trait
-        && raw.iter().any(|v| v.is_nan())
-    {
+    if spec.test.design() == DesignKind::Trait && raw.iter().any(|v| v.is_nan()) {
         return ModelReference::Correlation {
             n: raw.iter().filter(|v| !v.is_nan()).count() as f64,
         };
     }
-    if spec.supports_missing() && raw.iter().any(|v| v.is_nan()) {
+    if raw.iter().any(|v| v.is_nan()) {
         // The test was on the observed values: their sizes, ties and df.
         let (values, classes): (Vec<f64>, Vec<u8>) = raw
             .iter()

@@ -17,7 +17,12 @@ files, runs `riffle scan` for every test and side, and compares
   drops out of whichever group it lands in); the same for one-way F and
   Kruskal-Wallis (f_oneway, kruskal) on 3 + 3 + 3 samples, and for paired
   t and signed-rank (ttest_rel(nan_policy='omit'), wilcoxon) on 9 pairs,
-  and for Pearson (pearsonr on the observed samples) on 7 samples.
+  and for Pearson (pearsonr on the observed samples) on 7 samples; Spearman
+  (spearmanr on the observed samples, exact p_perm as permutation_test with
+  a statistic that drops the missing samples) on 7 samples with a tied
+  trait; covariate designs (two groups t, three groups F, a trait t) on 8
+  samples against statsmodels OLS on the observed rows, exact p_perm as
+  permutation_test over the observed rows' nuisance residuals.
 Exits 0 when everything agrees, 1 otherwise.
 """
 
@@ -381,6 +386,8 @@ def check_missing(folder):
               f"  max|p_perm - scipy| = {worst_perm:.2e}")
     failures += check_missing_pairs(folder, rng)
     failures += check_missing_trait(folder, rng)
+    failures += check_missing_spearman(folder, rng)
+    failures += check_missing_covariates(folder, rng)
     return failures
 
 
@@ -443,6 +450,177 @@ def check_missing_trait(folder, rng):
         failures += not ok
         print(f"{'ok ' if ok else 'BAD'} missing pearson     {side:7} max|p_param, r - scipy| = {worst_param:.2e}"
               f"  max|p_perm - scipy| = {worst_perm:.2e}")
+    return failures
+
+
+def write_text_matrix(folder, name, rows, samples):
+    """A text matrix with NA, empty and NaN cells for missing values."""
+    tokens = ["NA", "", "NaN"]
+    lines = ["feature\t" + "\t".join(samples)]
+    for k, row in enumerate(rows):
+        cells = [tokens[(k + i) % 3] if np.isnan(v) else repr(float(v)) for i, v in enumerate(row)]
+        lines.append(f"f{k}\t" + "\t".join(cells))
+    matrix = folder / name
+    matrix.write_text("\n".join(lines) + "\n")
+    return matrix
+
+
+def check_missing_spearman(folder, rng):
+    """Spearman with missing values and a tied trait (7 samples, all 5040
+    pairings): p_param and rho as spearmanr on the observed samples; exact
+    p_perm as permutation_test (permutation_type='pairings') with a
+    statistic that ranks both sides among the samples where the feature is
+    observed (riffle's trait moves over all samples, the mask stays)."""
+    trait = np.array([3.1, 0.5, 2.2, 3.1, 1.0, 2.2, 1.7])
+    samples = [f"r{i}" for i in range(len(trait))]
+    rows = []
+    for k in range(6):
+        row = np.round(rng.normal(size=len(trait)) + 0.5 * k * trait, 1 if k % 2 else 3)
+        row[rng.choice(len(trait), size=1 + k % 3, replace=False)] = np.nan
+        rows.append(row)
+    matrix = write_text_matrix(folder, "smissing.tsv", rows, samples)
+    sheet = folder / "smissing-sheet.tsv"
+    sheet.write_text("sample\tage\n" + "".join(f"{s}\t{v!r}\n" for s, v in zip(samples, trait.tolist())))
+
+    def observed_rho(x, axis=-1):
+        # rho over the samples where x is observed, vectorized over resamples.
+        x, y = np.broadcast_arrays(x, trait)
+        keep = ~np.isnan(x)
+        rx = stats.rankdata(x, axis=axis, nan_policy="omit")
+        ry = stats.rankdata(np.where(keep, y, np.nan), axis=axis, nan_policy="omit")
+        n = keep.sum(axis=axis, keepdims=True)
+        mx = np.where(keep, rx, 0.0).sum(axis=axis, keepdims=True) / n
+        my = np.where(keep, ry, 0.0).sum(axis=axis, keepdims=True) / n
+        dx, dy = np.where(keep, rx - mx, 0.0), np.where(keep, ry - my, 0.0)
+        return (dx * dy).sum(axis=axis) / np.sqrt((dx * dx).sum(axis=axis) * (dy * dy).sum(axis=axis))
+
+    failures = 0
+    for side, alt in [("both", "two-sided"), ("greater", "greater"), ("less", "less")]:
+        res = scan(matrix, sheet, folder / f"out-smissing-{side}",
+                   ["--test", "spearman", "--trait", "age", "--side", side, "--perms", "10000"])
+        worst_param = worst_perm = 0.0
+        for r, row in zip(res, rows):
+            keep = ~np.isnan(row)
+            ref = stats.spearmanr(row[keep], trait[keep], alternative=alt)
+            if side == "both":
+                statistic, alternative = (lambda x, axis=-1: np.abs(observed_rho(x, axis))), "greater"
+            else:
+                statistic, alternative = observed_rho, alt
+            perm = stats.permutation_test((row,), statistic, permutation_type="pairings",
+                                          vectorized=True, n_resamples=np.inf,
+                                          alternative=alternative).pvalue
+            worst_param = max(worst_param, abs(float(r["p_param"]) - ref.pvalue),
+                              abs(float(r["statistic"]) - ref.statistic),
+                              abs(float(r["effect"]) - ref.statistic))
+            worst_perm = max(worst_perm, abs(float(r["p_perm"]) - perm))
+            if int(r["n_a"]) != int(keep.sum()):
+                worst_param = math.inf
+        ok = worst_param <= 1e-10 and worst_perm <= 1e-12
+        failures += not ok
+        print(f"{'ok ' if ok else 'BAD'} missing spearman    {side:7} max|p_param, rho - scipy| = {worst_param:.2e}"
+              f"  max|p_perm - scipy| = {worst_perm:.2e}")
+    return failures
+
+
+def check_missing_covariates(folder, rng):
+    """Covariate designs with missing values (8 samples, all 8! relabelings
+    listed): t (two groups, a trait) or F (three groups) of the effect,
+    p_param and effect as statsmodels OLS on the observed rows (compare_f_test
+    for F; a covariate level absent from them is left out of that row's
+    model), exact p_perm as permutation_test over every order of the
+    observed rows' residuals after the covariates, added back to their
+    fitted values (Freedman-Lane on the observed rows)."""
+    import statsmodels.api as sm
+    n = 8
+    age = np.array([31.0, 45.0, 52.0, 38.0, 61.0, 29.0, 50.0, 44.0])
+    site = np.array(["x", "y", "x", "z", "x", "y", "z", "x"])
+    samples = [f"v{i}" for i in range(n)]
+    designs = [
+        ("student", ["--group", "arm"], np.array([0, 1, 0, 1, 1, 0, 1, 0]), "age,site"),
+        # Three groups leave room for one covariate on eight samples.
+        ("anova", ["--group", "arm"], np.array([0, 1, 2, 0, 1, 2, 1, 0]), "age"),
+        ("pearson", ["--trait", "score"], None, "age,site"),
+    ]
+    score = np.round(age / 10 + rng.normal(size=n), 2)
+    failures = 0
+    for test, args, arms, covariates in designs:
+        if arms is None:
+            effect_cols = score[:, None]
+        else:
+            effect_cols = np.column_stack([(arms == level).astype(float) for level in range(1, arms.max() + 1)])
+        signal = effect_cols.sum(axis=1)
+        rows = []
+        for k in range(6):
+            row = 1 + 0.03 * age + 0.5 * (site == "y") + rng.normal(size=n) + 0.6 * k * signal
+            if k == 1:
+                row[site == "z"] = np.nan  # level z absent from this row
+            elif k > 1:
+                row[rng.choice(n, size=1 + k % 2, replace=False)] = np.nan
+            rows.append(row)
+        matrix = write_text_matrix(folder, f"cmissing-{test}.tsv", rows, samples)
+        sheet = folder / f"cmissing-{test}-sheet.tsv"
+        arm_cells = ["" if arms is None else f"a{a}" for a in (arms if arms is not None else range(n))]
+        sheet.write_text("sample\tarm\tscore\tage\tsite\n" + "".join(
+            f"{s}\t{a}\t{float(t)!r}\t{float(g)!r}\t{st}\n"
+            for s, a, t, g, st in zip(samples, arm_cells, score.tolist(), age.tolist(), site)))
+        res = scan(matrix, sheet, folder / f"out-cmissing-{test}",
+                   ["--test", test, "--covariates", covariates, "--perms", "50000", "--min-observed", "2"]
+                   + args)
+        worst_param = worst_perm = 0.0
+        tested = 0
+        for k, (r, y) in enumerate(zip(res, rows)):
+            keep = ~np.isnan(y)
+            if k == 1 and "site" in covariates and r["note"] != "":
+                worst_param = math.inf  # the row without level z must be tested
+            if arms is not None and min(np.sum(keep & (arms == a)) for a in range(arms.max() + 1)) < 2:
+                worst_param = max(worst_param, 0.0 if r["note"] == "too few observed values" else math.inf)
+                continue
+            tested += 1
+            levels = [lv for lv in ["y", "z"] if np.any(site[keep] == lv) and "site" in covariates]
+            nuisance = np.column_stack([np.ones(keep.sum()), age[keep]]
+                                       + [(site[keep] == lv).astype(float) for lv in levels])
+            full = np.column_stack([effect_cols[keep], nuisance])
+            yo = y[keep]
+            e_cols = effect_cols.shape[1]
+            rank_full, rank_nuisance = np.linalg.matrix_rank(full), np.linalg.matrix_rank(nuisance)
+            if rank_full < rank_nuisance + e_cols or len(yo) - rank_full < 2:
+                # Confounded on the observed rows, or under two residual df.
+                expected = ("effect explained by the covariates on the observed values"
+                            if rank_full < rank_nuisance + e_cols else "too few observed values")
+                worst_param = max(worst_param, 0.0 if r["note"] == expected else math.inf)
+                tested -= 1
+                continue
+            full_fit, reduced_fit = sm.OLS(yo, full).fit(), sm.OLS(yo, nuisance).fit()
+            if e_cols == 1:
+                stat_ref, p_ref, effect_ref = full_fit.tvalues[0], full_fit.pvalues[0], full_fit.params[0]
+            else:
+                stat_ref, p_ref, _ = full_fit.compare_f_test(reduced_fit)
+                effect_ref = (reduced_fit.ssr - full_fit.ssr) / reduced_fit.ssr
+            worst_param = max(worst_param, abs(float(r["statistic"]) - stat_ref) / (1 + abs(stat_ref)),
+                              abs(float(r["p_param"]) - p_ref), abs(float(r["effect"]) - effect_ref))
+            fitted, resid = reduced_fit.fittedvalues, reduced_fit.resid
+            pinv = np.linalg.pinv(full)
+            unscaled = np.linalg.inv(full.T @ full)
+            df = len(yo) - full.shape[1]
+            pinv_r = np.linalg.pinv(nuisance)
+
+            def statistic(e, axis=-1):
+                ys = np.moveaxis(np.atleast_2d(e), axis, -1) + fitted
+                beta = ys @ pinv.T
+                rss = ((ys - beta @ full.T) ** 2).sum(axis=-1)
+                if e_cols == 1:
+                    return np.abs(beta[..., 0] / np.sqrt(rss / df * unscaled[0, 0]))
+                rss0 = ((ys - (ys @ pinv_r.T) @ nuisance.T) ** 2).sum(axis=-1)
+                return ((rss0 - rss) / e_cols) / (rss / df)
+
+            perm = stats.permutation_test((np.asarray(resid),), statistic, permutation_type="pairings",
+                                          vectorized=True, n_resamples=np.inf,
+                                          alternative="greater").pvalue
+            worst_perm = max(worst_perm, abs(float(r["p_perm"]) - perm))
+        ok = worst_param <= 1e-9 and worst_perm <= 1e-12 and tested >= 3
+        failures += not ok
+        print(f"{'ok ' if ok else 'BAD'} missing covariates {test:8} ({tested} rows) max|stat, p_param, effect"
+              f" - statsmodels| = {worst_param:.2e}  max|p_perm - scipy| = {worst_perm:.2e}")
     return failures
 
 
