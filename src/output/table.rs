@@ -199,9 +199,8 @@ enum ColumnBuilder {
 /// encoded independently.
 const PARQUET_BATCH_ROWS: usize = RESULTS_ROW_GROUP_ROWS;
 
-/// Builds column batches on the caller's thread; each full batch is one
-/// row group, handed to [`RowGroupEncoder`] (encoded on other threads while
-/// the caller, reading the spill and adjusting p-values, fills the next).
+/// Builds column batches; each full batch is one row group, its columns
+/// encoded on up to `threads` threads by [`RowGroupEncoder`].
 struct ParquetTable {
     path: PathBuf,
     temp: PathBuf,
@@ -302,7 +301,7 @@ impl ParquetTable {
             return Ok(());
         }
         let batch = self.take_batch()?;
-        self.encoder.write(batch)
+        self.encoder.write(&batch)
     }
 }
 
