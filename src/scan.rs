@@ -1120,12 +1120,12 @@ pub(crate) fn hits(summary: &AdjustSummary, method: Method) -> [u64; 3] {
         .unwrap_or([0; 3])
 }
 
-/// Multiple testing over the spill and the results table, in feature order
-/// and bounded memory.
 /// Columns of the widest results table (with pooled-null and parameter
 /// adjustments), with room to spare.
 const MAX_RESULT_COLUMNS: usize = 40;
 
+/// Multiple testing over the spill and the results table, in feature order
+/// and bounded memory.
 pub(crate) fn finalize(
     options: &ScanOptions,
     spill_dir: &Path,
@@ -1231,6 +1231,12 @@ pub(crate) fn finalize(
     }
     columns.push(("note".into(), ColumnKind::Text));
 
+    if columns.len() > MAX_RESULT_COLUMNS {
+        return Err(RiffleError::Internal(format!(
+            "{} results columns, room for {MAX_RESULT_COLUMNS}",
+            columns.len()
+        )));
+    }
     let results_path = options.out.join(options.format.file_name(RESULTS_STEM));
     let mut table = create_table(&results_path, options.format, &columns, options.threads)?;
     let maxt = options
