@@ -68,9 +68,12 @@ scan() {
     >/dev/null 2>"$scratch/err" || { cat "$scratch/err"; exit 1; }
   local secs kb
   read -r secs kb < "$scratch/time"
-  local timing
+  local timing phases
   timing=$(python3 -c "import json; t=json.load(open('$scratch/out/run.json'))['timing']; print(t['feature_relabelings_per_second'], t['read_seconds'])")
-  note "$key" "$secs $((kb / 1024)) $timing $n $b"
+  # Pipeline (read, standardize, relabel) and final pass (adjustments,
+  # results table) seconds.
+  phases=$(python3 -c "import json; t=json.load(open('$scratch/out/run.json'))['timing']; print(t['pipeline_seconds'], t.get('final_seconds', 0))")
+  note "$key" "$secs $((kb / 1024)) $timing $n $b $phases"
   echo "$key: $n x $samples, B = $b, $t thread(s) $*: ${secs} s, peak RSS $((kb / 1024)) MiB, (rate, read s) = $timing"
   rm -rf "$scratch/out"
 }
@@ -122,8 +125,9 @@ for line in open(sys.argv[1]):
     key, value = line.rstrip("\n").split("\t", 1)
     rows[key] = value
 def scan(key):
-    secs, mib, rate, read, n, b = rows[key].split()
-    return dict(secs=float(secs), mib=int(mib), rate=float(rate), read=float(read), n=int(n), b=int(b))
+    secs, mib, rate, read, n, b, pipe, final = rows[key].split()
+    return dict(secs=float(secs), mib=int(mib), rate=float(rate), read=float(read), n=int(n), b=int(b),
+                pipe=float(pipe), final=float(final))
 gemm1, gemm2 = float(rows["gemm1"]), float(rows["gemm2"])
 th = rows["threads"]
 print(f"\nSUMMARY ({rows['machine'].strip()}; load {rows['load_at_start']} at start, {rows['load_at_end']} at end)")
@@ -159,5 +163,6 @@ print(f"| 4. reader's share of wall time at B >= 1,000 | {100 * min(reads):.1f}%
 cat_secs, size = rows["cat_seconds"].split()
 b100 = scan("b100")
 print(f"| 5. B = 100, {b100['n']:,} features ({int(size) / 2**20:.0f} MiB) | {b100['secs']:.2f} s vs cat {float(cat_secs):.2f} s "
-      f"= {b100['secs'] / max(float(cat_secs), 1e-3):.1f}x (read {100 * b100['read'] / b100['secs']:.0f}%) | within 2x |")
+      f"= {b100['secs'] / max(float(cat_secs), 1e-3):.1f}x (read {100 * b100['read'] / b100['secs']:.0f}%; pipeline "
+      f"{b100['pipe']:.2f} s, final pass {b100['final']:.2f} s) | within 2x |")
 PY

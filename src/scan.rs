@@ -884,15 +884,19 @@ fn prepare_out_dir(out: &Path) -> Result<()> {
     Ok(())
 }
 
-/// Chunk size and queue depth from the memory budget: a quarter of it for
+/// Chunk size and queue depth from the memory budget: an eighth of it for
 /// the chunks in flight (raw f64, standardized f64 and f32 copies per
-/// value) — a share that ~100,000 features already fill, so that peak
-/// memory does not grow with the number of features.
+/// value). The queues run full only in long runs (the writer, sorting
+/// rows for step-down, is the slow consumer), so this share is the part
+/// of peak memory that grows from 100,000 to millions of features: with a
+/// quarter, 66-70 -> 81-86 MiB at --memory 256M (100,000 -> 2,000,000
+/// features, Welch, step-down, B = 1,000); with an eighth 60-62 -> 66-68
+/// MiB at the same speed (chunks of ~2,000 rows keep the GEMM tiles full).
 fn pipeline_options(options: &ScanOptions, n: usize, b_total: usize) -> PipelineOptions {
     let threads = options.threads.max(1);
     let per_row = (n * 28 + 160) as u64;
     let fixed = (n * b_total * 5) as u64;
-    let budget = (options.memory_bytes / 4).saturating_sub(fixed);
+    let budget = (options.memory_bytes / 8).saturating_sub(fixed);
     let rows_at = |depth: usize| budget / ((2 * depth + 2 * threads) as u64 * per_row);
     // A tight budget shortens the queue before it makes chunks small (small
     // chunks cost per-chunk overhead, a short queue only some overlap).
@@ -1103,6 +1107,8 @@ pub(crate) struct Finalized {
     pub(crate) relabelings_used: u64,
     /// Features that sequential stopping ended before B.
     pub(crate) stopped_early: u64,
+    /// Wall seconds of the adjustments and the results table.
+    pub(crate) seconds: f64,
 }
 
 pub(crate) fn hits(summary: &AdjustSummary, method: Method) -> [u64; 3] {
@@ -1114,6 +1120,10 @@ pub(crate) fn hits(summary: &AdjustSummary, method: Method) -> [u64; 3] {
         .unwrap_or([0; 3])
 }
 
+/// Columns of the widest results table (with pooled-null and parameter
+/// adjustments), with room to spare.
+const MAX_RESULT_COLUMNS: usize = 40;
+
 /// Multiple testing over the spill and the results table, in feature order
 /// and bounded memory.
 pub(crate) fn finalize(
@@ -1122,6 +1132,7 @@ pub(crate) fn finalize(
     null_max: &[f64],
     pooled: Option<&UpperTail>,
 ) -> Result<Finalized> {
+    let started = Instant::now();
     SpillReader::open(spill_dir)?;
     let adjust_options = AdjustOptions {
         methods: METHODS.to_vec(),
@@ -1220,8 +1231,14 @@ pub(crate) fn finalize(
     }
     columns.push(("note".into(), ColumnKind::Text));
 
+    if columns.len() > MAX_RESULT_COLUMNS {
+        return Err(RiffleError::Internal(format!(
+            "{} results columns, room for {MAX_RESULT_COLUMNS}",
+            columns.len()
+        )));
+    }
     let results_path = options.out.join(options.format.file_name(RESULTS_STEM));
-    let mut table = create_table(&results_path, options.format, &columns)?;
+    let mut table = create_table(&results_path, options.format, &columns, options.threads)?;
     let maxt = options
         .maxt_computed()
         .map(|_| crate::maxt::SingleStep::new(null_max));
@@ -1263,8 +1280,11 @@ pub(crate) fn finalize(
             if fwer <= 0.05 {
                 fwer_hits_05 += 1;
             }
-            let mut cells = vec![
-                Cell::Text(&id),
+            // A row's cells on the stack: one allocation per feature showed
+            // in the profile of the final pass at B = 100.
+            let mut cells = [Cell::Text(&id); MAX_RESULT_COLUMNS];
+            let mut n = 1;
+            for cell in [
                 Cell::Count(record.n_a as u64),
                 Cell::Count(record.n_b as u64),
                 Cell::Float(record.effect),
@@ -1278,19 +1298,29 @@ pub(crate) fn finalize(
                 }),
                 Cell::Count(record.exceed),
                 Cell::Count(record.n_relabel),
-            ];
-            cells.extend(adjusted.iter().map(|&v| Cell::Float(v)));
-            cells.push(Cell::Float(record.p_maxt));
-            cells.push(Cell::Float(p_maxt_single));
+            ]
+            .into_iter()
+            .chain(adjusted.iter().map(|&v| Cell::Float(v)))
+            .chain([Cell::Float(record.p_maxt), Cell::Float(p_maxt_single)])
+            {
+                cells[n] = cell;
+                n += 1;
+            }
             if let Some(cols) = pooled_columns.as_mut() {
                 cols.next_row(&mut pooled_row)?;
-                cells.extend(pooled_row.iter().map(|&v| Cell::Float(v)));
+                for &v in &pooled_row {
+                    cells[n] = Cell::Float(v);
+                    n += 1;
+                }
             }
             if options.also_param {
-                cells.extend(param_row.iter().map(|&v| Cell::Float(v)));
+                for &v in &param_row {
+                    cells[n] = Cell::Float(v);
+                    n += 1;
+                }
             }
-            cells.push(Cell::Text(record.status.reason()));
-            table.write_row(&cells)
+            cells[n] = Cell::Text(record.status.reason());
+            table.write_row(&cells[..=n])
         },
     )?;
     table.finish()?;
@@ -1305,6 +1335,7 @@ pub(crate) fn finalize(
         tail: None,
         relabelings_used,
         stopped_early,
+        seconds: started.elapsed().as_secs_f64(),
     })
 }
 
@@ -1381,6 +1412,7 @@ pub(crate) fn write_run_record(
             "fwer_p_maxt_single_at_0.05": finalized.fwer_hits_05,
         },
         "timing": {"seconds": summary.seconds, "pipeline_seconds": stats.wall_seconds,
+                   "final_seconds": finalized.seconds,
                    "read_seconds": stats.read_seconds, "kernel_seconds": stats.kernel_seconds,
                    "threads": options.threads, "cores": default_threads(), "chunks": stats.chunks,
                    "feature_relabelings_per_second": summary.feature_relabelings_per_second},

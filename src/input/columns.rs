@@ -169,6 +169,27 @@ impl IdColumn {
             IdColumn::Utf8View(a) => a.value(row),
         }
     }
+
+    /// Address ranges of the offsets and text of rows `0..rows` (none for
+    /// views, whose text may sit anywhere in their buffers).
+    fn prefix(&self, rows: usize) -> [(usize, usize); 2] {
+        fn of<O: arrow_array::OffsetSizeTrait>(
+            a: &arrow_array::GenericStringArray<O>,
+            rows: usize,
+        ) -> [(usize, usize); 2] {
+            let offsets = a.value_offsets();
+            let text_end = offsets[rows].as_usize();
+            [
+                (offsets.as_ptr() as usize, rows * std::mem::size_of::<O>()),
+                (a.value_data().as_ptr() as usize, text_end),
+            ]
+        }
+        match self {
+            IdColumn::Utf8(a) => of(a, rows),
+            IdColumn::LargeUtf8(a) => of(a, rows),
+            IdColumn::Utf8View(_) => [(0, 0); 2],
+        }
+    }
 }
 
 pub(crate) enum ValueColumn {
@@ -187,6 +208,17 @@ impl ValueColumn {
             ValueColumn::I64(a) => a.nulls(),
         };
         nulls.filter(|n| n.null_count() > 0)
+    }
+
+    /// Address and length in bytes of the values of rows `0..rows`.
+    fn values_prefix(&self, rows: usize) -> (usize, usize) {
+        let (ptr, width) = match self {
+            ValueColumn::F32(a) => (a.values().inner().as_ptr(), 4),
+            ValueColumn::F64(a) => (a.values().inner().as_ptr(), 8),
+            ValueColumn::I32(a) => (a.values().inner().as_ptr(), 4),
+            ValueColumn::I64(a) => (a.values().inner().as_ptr(), 8),
+        };
+        (ptr as usize, rows * width)
     }
 
     #[cfg(test)]
@@ -293,6 +325,15 @@ impl LoadedBatch {
             ids,
             values,
         })
+    }
+
+    /// Address ranges (start, length in bytes) of each value column's and
+    /// the ids' rows `0..rows`: the part of the batch already read.
+    pub(crate) fn consumed(&self, rows: usize) -> impl Iterator<Item = (usize, usize)> + '_ {
+        self.values
+            .iter()
+            .map(move |c| c.values_prefix(rows))
+            .chain(self.ids.prefix(rows))
     }
 
     /// Copy ids of rows `start..start + n` into `ids[at..]`, reusing the
@@ -407,6 +448,10 @@ pub(crate) trait BatchSource: Send {
     /// The next batch, or None at the end. The previous batch has been
     /// dropped by the caller, so its memory may be released.
     fn next_batch(&mut self) -> Result<Option<LoadedBatch>>;
+    /// Rows `0..rows` of `batch` (the current one) have been read and will
+    /// not be read again before the next batch: a memory-mapped source may
+    /// hand their pages back.
+    fn consumed(&mut self, _batch: &LoadedBatch, _rows: usize) {}
 }
 
 /// Row-level cursor over a [`BatchSource`], implementing [`FeatureSource`].
@@ -513,6 +558,9 @@ impl<S: BatchSource> FeatureSource for RowStream<S> {
             );
             rows += n;
             self.row_in_batch += n;
+        }
+        if let Some(batch) = &self.current {
+            self.source.consumed(batch, self.row_in_batch);
         }
         block.ids.truncate(rows);
         block.values.truncate(rows * n_samples);

@@ -697,3 +697,61 @@ fn status_kib(key: &str) -> u64 {
         .and_then(|v| v.parse().ok())
         .unwrap_or(0)
 }
+
+/// Resident kilobytes of the mapping that starts at `start`, from
+/// /proc/self/smaps (Linux).
+#[cfg(target_os = "linux")]
+fn mapping_rss_kb(start: usize) -> usize {
+    let smaps = std::fs::read_to_string("/proc/self/smaps").unwrap();
+    let mut in_mapping = false;
+    for line in smaps.lines() {
+        if let Some((range, _)) = line.split_once(' ') {
+            if let Some((from, _)) = range.split_once('-') {
+                if let Ok(from) = usize::from_str_radix(from, 16) {
+                    in_mapping = from == start;
+                    continue;
+                }
+            }
+        }
+        if in_mapping {
+            if let Some(rest) = line.strip_prefix("Rss:") {
+                return rest.trim().trim_end_matches("kB").trim().parse().unwrap();
+            }
+        }
+    }
+    panic!("no mapping at {start:#x}");
+}
+
+/// The read part of a record batch is handed back as the reader goes: with
+/// one batch of 200,000 rows x 4 f32 (3.2 MB of values, ~2.7 MB of ids),
+/// after reading 3/4 of it in chunks the mapping keeps far less than the
+/// 4.4 MB read (without the release every page read stays resident).
+#[cfg(target_os = "linux")]
+#[test]
+fn arrow_reading_hands_back_read_pages() {
+    let dir = tempfile::tempdir().unwrap();
+    let path = dir.path().join("m.arrow");
+    let rows = 200_000;
+    write_matrix(
+        &path,
+        MatrixFormat::ArrowIpc,
+        ValueType::F32,
+        rows,
+        4,
+        rows,
+        rows,
+    );
+    let wanted = names(4);
+    let (mut stream, mmap) = ipc_file::open_for_test(&path, "feature", &wanted).unwrap();
+    let mut block = FeatureBlock::default();
+    let mut read = 0;
+    while read < rows * 3 / 4 {
+        read += stream.next_block(2_000, &mut block).unwrap();
+    }
+    let bytes_read = read * 4 * 4 + read * 14;
+    let resident = mapping_rss_kb(mmap.as_ptr() as usize) * 1024;
+    assert!(
+        resident < bytes_read / 4,
+        "{resident} bytes of the map resident after reading {bytes_read}"
+    );
+}

@@ -9,11 +9,11 @@ use std::sync::Arc;
 use arrow_array::builder::{Float64Builder, StringBuilder, UInt64Builder};
 use arrow_array::{ArrayRef, RecordBatch};
 use arrow_schema::{DataType, Field, Schema};
-use parquet::arrow::ArrowWriter;
 use parquet::basic::{Compression, ZstdLevel};
 use parquet::file::properties::{EnabledStatistics, WriterProperties};
 use parquet::schema::types::ColumnPath;
 
+use super::encode::RowGroupEncoder;
 use crate::error::{IoContext, Result, RiffleError};
 use crate::spill::temp_name;
 
@@ -66,13 +66,14 @@ pub fn create_table(
     path: &Path,
     format: TableFormat,
     columns: &[(String, ColumnKind)],
+    threads: usize,
 ) -> Result<Box<dyn TableWriter>> {
     let temp = temp_name(path);
     let file = File::create(&temp).at(&temp)?;
     let out = BufWriter::with_capacity(1 << 20, file);
     Ok(match format {
         TableFormat::Tsv => Box::new(TsvWriter::new(path, temp, out, columns)?),
-        TableFormat::Parquet => Box::new(ParquetTable::new(path, temp, out, columns)?),
+        TableFormat::Parquet => Box::new(ParquetTable::new(path, temp, out, columns, threads)?),
     })
 }
 
@@ -141,21 +142,72 @@ impl TableWriter for TsvWriter {
     }
 }
 
+/// Float columns of results tables whose values are continuous (almost all
+/// distinct); the others hold a few hundred distinct values at most
+/// (p-values from counts and their adjustments).
+fn is_continuous(name: &str) -> bool {
+    matches!(
+        name,
+        "effect" | "statistic" | "p_param" | "p_pooled" | "q_pooled"
+    ) || name.ends_with("_param")
+}
+
+/// Writer properties of a results table.
+pub(crate) fn results_properties(columns: &[(String, ColumnKind)]) -> WriterProperties {
+    let mut props = WriterProperties::builder()
+        .set_compression(Compression::ZSTD(ZstdLevel::try_new(3).unwrap()))
+        .set_max_row_group_row_count(Some(RESULTS_ROW_GROUP_ROWS))
+        .set_created_by(format!("riffle {}", env!("CARGO_PKG_VERSION")));
+    if let Some((name, ColumnKind::Text)) = columns.first() {
+        // The feature ids are all distinct: a dictionary never pays, and
+        // their min/max statistics (string comparisons on every value)
+        // took a sixth of a scan at B = 100.
+        let id = ColumnPath::from(name.as_str());
+        props = props
+            .set_column_dictionary_enabled(id.clone(), false)
+            .set_column_statistics_enabled(id, EnabledStatistics::None);
+    }
+    for (name, kind) in columns.iter().skip(1) {
+        let column = ColumnPath::from(name.as_str());
+        match kind {
+            // Text columns after the ids hold a few distinct words (how p
+            // was computed, why a feature was untested): the dictionary
+            // suits them, but their min/max statistics compare every value
+            // and took two fifths of the encoding at B = 100; nothing
+            // filters on them.
+            ColumnKind::Text => {
+                props = props.set_column_statistics_enabled(column, EnabledStatistics::None)
+            }
+            // Continuous values are all distinct: the dictionary attempt
+            // hashes every value, fills a page and falls back to plain.
+            ColumnKind::Float if is_continuous(name) => {
+                props = props.set_column_dictionary_enabled(column, false)
+            }
+            _ => {}
+        }
+    }
+    props.build()
+}
+
 enum ColumnBuilder {
     Text(StringBuilder),
     Float(Float64Builder),
     Count(UInt64Builder),
 }
 
-const PARQUET_BATCH_ROWS: usize = 65_536;
+/// Rows per batch: one batch is one row group, so that row groups can be
+/// encoded independently.
+const PARQUET_BATCH_ROWS: usize = RESULTS_ROW_GROUP_ROWS;
 
+/// Builds column batches; each full batch is one row group, its columns
+/// encoded on up to `threads` threads by [`RowGroupEncoder`].
 struct ParquetTable {
     path: PathBuf,
     temp: PathBuf,
     schema: Arc<Schema>,
     builders: Vec<ColumnBuilder>,
     rows: usize,
-    writer: ArrowWriter<BufWriter<File>>,
+    encoder: RowGroupEncoder,
 }
 
 impl ParquetTable {
@@ -164,6 +216,7 @@ impl ParquetTable {
         temp: PathBuf,
         out: BufWriter<File>,
         columns: &[(String, ColumnKind)],
+        threads: usize,
     ) -> Result<Self> {
         let fields: Vec<Field> = columns
             .iter()
@@ -177,22 +230,13 @@ impl ParquetTable {
             })
             .collect();
         let schema = Arc::new(Schema::new(fields));
-        let mut props = WriterProperties::builder()
-            .set_compression(Compression::ZSTD(ZstdLevel::try_new(3).unwrap()))
-            .set_max_row_group_row_count(Some(RESULTS_ROW_GROUP_ROWS))
-            .set_created_by(format!("riffle {}", env!("CARGO_PKG_VERSION")));
-        if let Some((name, ColumnKind::Text)) = columns.first() {
-            // The feature ids are all distinct: a dictionary never pays, and
-            // their min/max statistics (string comparisons on every value)
-            // took a sixth of a scan at B = 100.
-            let id = ColumnPath::from(name.as_str());
-            props = props
-                .set_column_dictionary_enabled(id.clone(), false)
-                .set_column_statistics_enabled(id, EnabledStatistics::None);
-        }
-        let props = props.build();
-        let writer = ArrowWriter::try_new(out, schema.clone(), Some(props))
-            .map_err(|e| RiffleError::io(&temp, std::io::Error::other(e)))?;
+        let encoder = RowGroupEncoder::new(
+            &temp,
+            out,
+            schema.clone(),
+            results_properties(columns),
+            threads,
+        )?;
         let builders = columns
             .iter()
             .map(|(_, kind)| match kind {
@@ -207,37 +251,11 @@ impl ParquetTable {
             schema,
             builders,
             rows: 0,
-            writer,
+            encoder,
         })
     }
 
-    fn flush(&mut self) -> Result<()> {
-        if self.rows == 0 {
-            return Ok(());
-        }
-        let arrays: Vec<ArrayRef> = self
-            .builders
-            .iter_mut()
-            .map(|b| -> ArrayRef {
-                match b {
-                    ColumnBuilder::Text(b) => Arc::new(b.finish()),
-                    ColumnBuilder::Float(b) => Arc::new(b.finish()),
-                    ColumnBuilder::Count(b) => Arc::new(b.finish()),
-                }
-            })
-            .collect();
-        let batch = RecordBatch::try_new(self.schema.clone(), arrays)
-            .map_err(|e| RiffleError::Internal(format!("results batch: {e}")))?;
-        self.writer
-            .write(&batch)
-            .map_err(|e| RiffleError::io(&self.temp, std::io::Error::other(e)))?;
-        self.rows = 0;
-        Ok(())
-    }
-}
-
-impl TableWriter for ParquetTable {
-    fn write_row(&mut self, cells: &[Cell<'_>]) -> Result<()> {
+    fn append(&mut self, cells: &[Cell<'_>]) -> Result<()> {
         for (builder, cell) in self.builders.iter_mut().zip(cells) {
             match (builder, cell) {
                 (ColumnBuilder::Text(b), Cell::Text(s)) => b.append_value(s),
@@ -257,6 +275,39 @@ impl TableWriter for ParquetTable {
             }
         }
         self.rows += 1;
+        Ok(())
+    }
+
+    /// The rows appended so far as one batch; the builders start afresh.
+    fn take_batch(&mut self) -> Result<RecordBatch> {
+        let arrays: Vec<ArrayRef> = self
+            .builders
+            .iter_mut()
+            .map(|b| -> ArrayRef {
+                match b {
+                    ColumnBuilder::Text(b) => Arc::new(b.finish()),
+                    ColumnBuilder::Float(b) => Arc::new(b.finish()),
+                    ColumnBuilder::Count(b) => Arc::new(b.finish()),
+                }
+            })
+            .collect();
+        self.rows = 0;
+        RecordBatch::try_new(self.schema.clone(), arrays)
+            .map_err(|e| RiffleError::Internal(format!("results batch: {e}")))
+    }
+
+    fn flush(&mut self) -> Result<()> {
+        if self.rows == 0 {
+            return Ok(());
+        }
+        let batch = self.take_batch()?;
+        self.encoder.write(&batch)
+    }
+}
+
+impl TableWriter for ParquetTable {
+    fn write_row(&mut self, cells: &[Cell<'_>]) -> Result<()> {
+        self.append(cells)?;
         if self.rows == PARQUET_BATCH_ROWS {
             self.flush()?;
         }
@@ -265,14 +316,132 @@ impl TableWriter for ParquetTable {
 
     fn finish(mut self: Box<Self>) -> Result<()> {
         self.flush()?;
-        let out = self
-            .writer
-            .into_inner()
-            .map_err(|e| RiffleError::io(&self.temp, std::io::Error::other(e)))?;
-        let file = out
-            .into_inner()
-            .map_err(|e| RiffleError::io(&self.temp, e.into_error()))?;
-        file.sync_all().at(&self.temp)?;
-        std::fs::rename(&self.temp, &self.path).at(&self.path)
+        let ParquetTable {
+            path,
+            temp,
+            encoder,
+            ..
+        } = *self;
+        encoder.finish()?;
+        std::fs::rename(&temp, &path).at(&path)
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// Columns of every kind; ids, a few words, counts, continuous and
+    /// discrete floats with missing values.
+    fn columns() -> Vec<(String, ColumnKind)> {
+        [
+            ("feature", ColumnKind::Text),
+            ("n_a", ColumnKind::Count),
+            ("effect", ColumnKind::Float),
+            ("p_perm", ColumnKind::Float),
+            ("p_source", ColumnKind::Text),
+        ]
+        .iter()
+        .map(|(n, k)| (n.to_string(), *k))
+        .collect()
+    }
+
+    fn write_rows(table: &mut dyn TableWriter, rows: usize) {
+        let mut id = String::new();
+        for i in 0..rows {
+            id.clear();
+            id.push_str(&format!("f{i:07}"));
+            let effect = if i % 97 == 0 {
+                f64::NAN
+            } else {
+                (i as f64 * 0.7).sin()
+            };
+            let p = ((i * 7919) % 101 + 1) as f64 / 101.0;
+            let source = if i % 13 == 0 { "untested" } else { "counted" };
+            table
+                .write_row(&[
+                    Cell::Text(&id),
+                    Cell::Count((i % 5) as u64),
+                    Cell::Float(effect),
+                    Cell::Float(p),
+                    Cell::Text(source),
+                ])
+                .unwrap();
+        }
+    }
+
+    /// The row groups encoded on several threads make the same file as the
+    /// parquet crate's own serial `ArrowWriter` fed the same batches with
+    /// the same properties, whatever the number of threads; 2.5 row groups
+    /// so that the last one is partial.
+    #[test]
+    fn parallel_row_groups_equal_the_serial_writer() {
+        let dir = tempfile::tempdir().unwrap();
+        let rows = 2 * RESULTS_ROW_GROUP_ROWS + RESULTS_ROW_GROUP_ROWS / 2;
+        let mut files = Vec::new();
+        for threads in [1, 3] {
+            let path = dir.path().join(format!("t{threads}.parquet"));
+            let mut table = create_table(&path, TableFormat::Parquet, &columns(), threads).unwrap();
+            write_rows(&mut *table, rows);
+            table.finish().unwrap();
+            files.push(std::fs::read(&path).unwrap());
+        }
+
+        // The reference: the same rows through builders and ArrowWriter.
+        let path = dir.path().join("serial.parquet");
+        let columns = columns();
+        let temp = dir.path().join("serial.tmp");
+        let mut table = ParquetTable::new(
+            &path,
+            temp,
+            BufWriter::new(File::create(dir.path().join("unused")).unwrap()),
+            &columns,
+            1,
+        )
+        .unwrap();
+        let mut serial = parquet::arrow::ArrowWriter::try_new(
+            File::create(&path).unwrap(),
+            table.schema.clone(),
+            Some(results_properties(&columns)),
+        )
+        .unwrap();
+        let mut collected = CollectRows {
+            table: &mut table,
+            batches: Vec::new(),
+        };
+        write_rows(&mut collected, rows);
+        if collected.table.rows > 0 {
+            let batch = collected.table.take_batch().unwrap();
+            collected.batches.push(batch);
+        }
+        for batch in &collected.batches {
+            serial.write(batch).unwrap();
+        }
+        serial.close().unwrap();
+        let reference = std::fs::read(&path).unwrap();
+        assert_eq!(files[0], reference, "1 thread vs ArrowWriter");
+        assert_eq!(files[1], reference, "3 threads vs ArrowWriter");
+    }
+
+    /// Fills a table's builders and takes each full batch instead of
+    /// encoding it.
+    struct CollectRows<'a> {
+        table: &'a mut ParquetTable,
+        batches: Vec<RecordBatch>,
+    }
+
+    impl TableWriter for CollectRows<'_> {
+        fn write_row(&mut self, cells: &[Cell<'_>]) -> Result<()> {
+            self.table.append(cells)?;
+            if self.table.rows == PARQUET_BATCH_ROWS {
+                let batch = self.table.take_batch()?;
+                self.batches.push(batch);
+            }
+            Ok(())
+        }
+
+        fn finish(self: Box<Self>) -> Result<()> {
+            Ok(())
+        }
     }
 }
