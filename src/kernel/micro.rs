@@ -19,6 +19,8 @@
 //! round twice, so the bound only tightens), which the kernel's error band
 //! `2 (n + 2) u sum |z w|` covers.
 
+use super::simd::WelchConstants;
+
 /// Columns per panel.
 pub(super) const PANEL: usize = 16;
 
@@ -225,6 +227,10 @@ impl RowFlags {
 /// `orient_all` would give), `flags[i]` the pass of row i against
 /// `bounds[i]` and `floors` (indexed from `col0`). Floors only rise, so
 /// flags found against earlier floors can only be too many, never too few.
+/// With `welch`, rows come in pairs (a feature's values, then their
+/// squares): feature i's Welch t (as `welch_row` computes it, same
+/// operations in the same order) goes to output row 2 i, its flags to
+/// `flags[i]`.
 #[allow(clippy::too_many_arguments)]
 pub(super) fn multiply_counted(
     w: &Panels,
@@ -234,17 +240,20 @@ pub(super) fn multiply_counted(
     cols: usize,
     out: &mut [f32],
     side: crate::stats::Side,
+    welch: Option<WelchConstants>,
     bounds: &[Bounds],
     floors: &[f32],
     flags: &mut [RowFlags],
 ) {
     let n = w.n;
+    let features = if welch.is_some() { rows / 2 } else { rows };
+    assert!(welch.is_none() || rows % 2 == 0, "Welch rows come in pairs");
     assert!(a.len() >= rows * n, "left operand too short");
     assert!(out.len() >= rows * cols, "output too short");
     assert!(col0 + cols <= w.total, "columns out of range");
-    assert!(bounds.len() >= rows && flags.len() >= rows && floors.len() >= cols);
+    assert!(bounds.len() >= features && flags.len() >= features && floors.len() >= cols);
     assert!(cols + PANEL <= 64 * PANEL, "too many columns for the flags");
-    for f in flags[..rows].iter_mut() {
+    for f in flags[..features].iter_mut() {
         *f = RowFlags {
             block: PANEL,
             offset: col0 % PANEL,
@@ -271,6 +280,7 @@ pub(super) fn multiply_counted(
         };
         let count = avx512::Count {
             side,
+            welch,
             bounds,
             floors,
             flags,
@@ -330,7 +340,7 @@ impl Job {
 
 #[cfg(target_arch = "x86_64")]
 mod avx512 {
-    use super::{Job, PANEL};
+    use super::{Job, WelchConstants, PANEL};
     use std::arch::x86_64::*;
 
     /// Rows per register block.
@@ -422,9 +432,34 @@ mod avx512 {
         }
     }
 
+    /// `welch_row` on 16 lanes: the same IEEE operations in the same order
+    /// (division and square root are correctly rounded in both), so the
+    /// same bits.
+    #[target_feature(enable = "avx512f")]
+    #[inline]
+    unsafe fn welch(s1: __m512, q1: __m512, c: WelchConstants) -> __m512 {
+        let s1sq = _mm512_mul_ps(s1, s1);
+        let q0 = _mm512_sub_ps(_mm512_set1_ps(c.total_sq), q1);
+        let ss_b = _mm512_sub_ps(q1, _mm512_mul_ps(s1sq, _mm512_set1_ps(c.inv_nb)));
+        let ss_a = _mm512_sub_ps(q0, _mm512_mul_ps(s1sq, _mm512_set1_ps(c.inv_na)));
+        let hundredth = _mm512_set1_ps(1e-2);
+        let conditioned = _mm512_cmp_ps_mask::<_CMP_GT_OQ>(ss_b, _mm512_mul_ps(hundredth, q1))
+            & _mm512_cmp_ps_mask::<_CMP_GT_OQ>(ss_a, _mm512_mul_ps(hundredth, q0));
+        let spread = _mm512_add_ps(
+            _mm512_mul_ps(ss_a, _mm512_set1_ps(c.var_a)),
+            _mm512_mul_ps(ss_b, _mm512_set1_ps(c.var_b)),
+        );
+        let t = _mm512_div_ps(
+            _mm512_mul_ps(s1, _mm512_set1_ps(c.diff)),
+            _mm512_sqrt_ps(spread),
+        );
+        _mm512_mask_blend_ps(conditioned, _mm512_set1_ps(f32::NAN), t)
+    }
+
     /// The counting half of `multiply_counted`.
     pub(super) struct Count<'a> {
         pub side: crate::stats::Side,
+        pub welch: Option<WelchConstants>,
         pub bounds: &'a [super::Bounds],
         pub floors: &'a [f32],
         pub flags: &'a mut [super::RowFlags],
@@ -505,10 +540,22 @@ mod avx512 {
                 count.floors.as_ptr().wrapping_offset(shift),
             );
             let bit = 1u64 << (p + v - first);
-            for (r, acc) in acc.iter().enumerate() {
-                let bits = _mm512_and_si512(_mm512_castps_si512(acc[v]), keep);
+            // Plain rows: one statistic per row. Welch: rows in pairs, the
+            // statistic of pair j written over its first row.
+            let (step, feature0) = if count.welch.is_some() {
+                (2, i / 2)
+            } else {
+                (1, i)
+            };
+            for r in (0..R).step_by(step) {
+                let value = match count.welch {
+                    Some(c) => welch(acc[r][v], acc[r + 1][v], c),
+                    None => acc[r][v],
+                };
+                let bits = _mm512_and_si512(_mm512_castps_si512(value), keep);
                 let x = _mm512_castsi512_ps(_mm512_xor_si512(bits, flip));
-                let b = *count.bounds.get_unchecked(i + r);
+                let f = feature0 + r / step;
+                let b = *count.bounds.get_unchecked(f);
                 let above =
                     _mm512_mask_cmp_ps_mask::<_CMP_GT_OQ>(lanes, x, _mm512_set1_ps(b.above));
                 let below = _mm512_cmp_ps_mask::<_CMP_LT_OQ>(x, _mm512_set1_ps(b.below));
@@ -517,7 +564,7 @@ mod avx512 {
                     _mm512_add_ps(x, _mm512_set1_ps(b.slack)),
                     floor,
                 );
-                let flags = count.flags.get_unchecked_mut(i + r);
+                let flags = count.flags.get_unchecked_mut(f);
                 flags.clear += above.count_ones();
                 flags.near |= u64::from(!(above | below) & lanes != 0) * bit;
                 flags.over |= u64::from(over != 0) * bit;

@@ -405,14 +405,13 @@ impl Kernel {
         let f32_or_zero = |v: f64| if v.is_nan() { 0.0 } else { v as f32 };
         buffers.z32.clear();
         if squares {
-            // Each block of ROW_TILE rows is followed by its squares, so
-            // that one GEMM call (sharing one packing of the weights) gives
-            // both the sums and the sums of squares.
-            for block in standardized.chunks(ROW_TILE * n.max(1)) {
-                buffers.z32.extend(block.iter().map(|&v| f32_or_zero(v)));
-                buffers
-                    .z32
-                    .extend(block.iter().map(|&v| f32_or_zero(v * v)));
+            // Each row is followed by its squares, so that one GEMM call
+            // (sharing the weights) gives both the sums and the sums of
+            // squares, and both sit in one register block of the
+            // microkernel, which finishes Welch t there.
+            for row in standardized.chunks(n.max(1)) {
+                buffers.z32.extend(row.iter().map(|&v| f32_or_zero(v)));
+                buffers.z32.extend(row.iter().map(|&v| f32_or_zero(v * v)));
             }
         } else {
             buffers
@@ -472,6 +471,7 @@ impl Kernel {
         mut visit: impl FnMut(usize, usize, &[f32]),
     ) {
         let r = self.spec.width();
+        let stack = if self.spec.test.needs_squares() { 2 } else { 1 };
         let col_end = col_start + cols;
         for row0 in (0..rows.rows).step_by(ROW_TILE) {
             let rt = ROW_TILE.min(rows.rows - row0);
@@ -479,7 +479,8 @@ impl Kernel {
                 let ct = COL_TILE.min(col_end - col0);
                 self.finished_tile(rows, row0, rt, col0, ct, tiles);
                 for i in 0..rt {
-                    visit(row0 + i, col0, &tiles.sums[i * ct * r..i * ct * r + ct]);
+                    let at = stack * i * ct * r;
+                    visit(row0 + i, col0, &tiles.sums[at..at + ct]);
                 }
             }
         }
@@ -513,11 +514,14 @@ impl Kernel {
                 .enumerate()
                 .map(|(k, &o)| RowCheck::new(o, rows.band[k], rows.slack[k])),
         );
+        let squares = self.spec.test.needs_squares();
+        let stack = if squares { 2 } else { 1 };
+        let welch = squares.then(|| self.welch_constants());
         let fusable = match &self.weights {
             Weights::Panels(micro::Isa::Avx512, panels) => Some(panels),
             _ => None,
         }
-        .filter(|_| r == 1 && !self.spec.test.needs_squares() && self.spec.model.is_none());
+        .filter(|_| r == 1 && self.spec.model.is_none());
         tiles.flags.resize(ROW_TILE, RowFlags::default());
         let col_end = col_start + cols;
         for row0 in (0..rows.rows).step_by(ROW_TILE) {
@@ -529,7 +533,7 @@ impl Kernel {
                 let floors = &mut floors[col0 - col_start..col0 - col_start + ct];
                 let fused = fusable.filter(|_| complete);
                 if let Some(panels) = fused {
-                    tiles.sums.resize(ROW_TILE * COL_TILE, 0.0);
+                    tiles.sums.resize(stack * ROW_TILE * COL_TILE, 0.0);
                     tiles.bounds.clear();
                     tiles.bounds.extend(checks.iter().map(|c| micro::Bounds {
                         above: c.above,
@@ -538,12 +542,13 @@ impl Kernel {
                     }));
                     micro::multiply_counted(
                         panels,
-                        &rows.z32[row0 * n..],
-                        rt,
+                        &rows.z32[stack * row0 * n..],
+                        stack * rt,
                         col0,
                         ct,
                         &mut tiles.sums,
                         self.spec.side,
+                        welch,
                         &tiles.bounds,
                         floors,
                         &mut tiles.flags,
@@ -552,7 +557,8 @@ impl Kernel {
                     self.finished_tile(rows, row0, rt, col0, ct, tiles);
                 }
                 for (i, check) in checks.iter().enumerate() {
-                    let tile = &tiles.sums[i * ct * r..i * ct * r + ct];
+                    let at = stack * i * ct * r;
+                    let tile = &tiles.sums[at..at + ct];
                     if fused.is_none() {
                         // Scanned just before the row's visit: the floors
                         // are as high as earlier rows left them.
@@ -580,8 +586,8 @@ impl Kernel {
         let n = self.units();
         let r = self.spec.width();
         let squares = self.spec.test.needs_squares();
-        // Welch stacks each block's squared rows under its rows (see
-        // `load_rows`): one GEMM of twice the rows.
+        // Welch follows each row with its squares (see `load_rows`): one
+        // GEMM of twice the rows.
         let stack = if squares { 2 } else { 1 };
         tiles.sums.resize(stack * ROW_TILE * COL_TILE * r, 0.0);
         self.multiply(
@@ -607,12 +613,12 @@ impl Kernel {
             let (a, out) = (&rows.mask32[row0 * n..], &mut tiles.mask_squares);
             self.multiply_with(squared, a, rt, col0, ct, out);
         }
-        let (sums, sq) = tiles.sums.split_at_mut(rt * ct * r);
         for (i, &row_observed) in observed.iter().enumerate() {
-            let wide = &mut sums[i * ct * r..(i + 1) * ct * r];
+            let row = &mut tiles.sums[stack * i * ct * r..(stack * i + stack) * ct * r];
+            let (wide, sq) = row.split_at_mut(ct * r);
             if masked && row_observed < n {
                 let squares = if squares {
-                    &sq[i * ct..(i + 1) * ct]
+                    &sq[..ct]
                 } else if trait_masked {
                     &tiles.mask_squares[i * ct..(i + 1) * ct]
                 } else {
@@ -625,7 +631,7 @@ impl Kernel {
                 };
                 self.masked_tile(wide, squares, masks, row_observed);
             } else if squares {
-                self.welch_tile(wide, &sq[i * ct..(i + 1) * ct]);
+                self.welch_tile(wide, &sq[..ct]);
             } else if self.spec.model.is_some() {
                 self.model_tile(wide, ct);
             } else if r > 1 {
