@@ -247,7 +247,10 @@ pub(super) fn multiply_counted(
 ) {
     let n = w.n;
     let features = if welch.is_some() { rows / 2 } else { rows };
-    assert!(welch.is_none() || rows % 2 == 0, "Welch rows come in pairs");
+    assert!(
+        welch.is_none() || rows.is_multiple_of(2),
+        "Welch rows come in pairs"
+    );
     assert!(a.len() >= rows * n, "left operand too short");
     assert!(out.len() >= rows * cols, "output too short");
     assert!(col0 + cols <= w.total, "columns out of range");
@@ -510,6 +513,8 @@ mod avx512 {
     /// `block`, then per value: orient, count clear exceedances, flag values
     /// near the observed statistic or over the floor, as `scan_row` does
     /// (the same IEEE comparisons and add, so the same decisions).
+    // Welch reads two rows of `acc` per statistic, so the rows are indexed.
+    #[allow(clippy::needless_range_loop)]
     #[target_feature(enable = "avx512f")]
     #[inline]
     unsafe fn counted<const R: usize, const V: usize>(
