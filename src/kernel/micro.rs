@@ -429,8 +429,13 @@ mod avx512 {
             let shift = ((p + v) * PANEL) as isize - job.col0 as isize;
             for (r, acc) in acc.iter().enumerate() {
                 let row = job.out.add((i + r) * job.cols);
-                // Only the lanes inside the column range are written.
-                _mm512_mask_storeu_ps(row.wrapping_offset(shift), lanes, acc[v]);
+                // Only the lanes inside the column range are written; the
+                // (slower) masked store only where some lanes are outside.
+                if lanes == u16::MAX {
+                    _mm512_storeu_ps(row.offset(shift), acc[v]);
+                } else {
+                    _mm512_mask_storeu_ps(row.wrapping_offset(shift), lanes, acc[v]);
+                }
             }
         }
     }
@@ -539,11 +544,18 @@ mod avx512 {
             // Lane l of panel p + v is output column start + l - col0; the
             // masked loads and stores touch only the lanes inside the range.
             let shift = ((p + v) * PANEL) as isize - job.col0 as isize;
-            let floor = _mm512_mask_loadu_ps(
-                _mm512_set1_ps(f32::INFINITY),
-                lanes,
-                count.floors.as_ptr().wrapping_offset(shift),
-            );
+            let full = lanes == u16::MAX;
+            // Masked loads and stores are slow on some CPUs (AMD Zen 4):
+            // only the partial panels at the ends of the range use them.
+            let floor = if full {
+                _mm512_loadu_ps(count.floors.as_ptr().offset(shift))
+            } else {
+                _mm512_mask_loadu_ps(
+                    _mm512_set1_ps(f32::INFINITY),
+                    lanes,
+                    count.floors.as_ptr().wrapping_offset(shift),
+                )
+            };
             let bit = 1u64 << (p + v - first);
             // Plain rows: one statistic per row. Welch: rows in pairs, the
             // statistic of pair j written over its first row.
@@ -574,7 +586,11 @@ mod avx512 {
                 flags.near |= u64::from(!(above | below) & lanes != 0) * bit;
                 flags.over |= u64::from(over != 0) * bit;
                 let row = job.out.add((i + r) * job.cols);
-                _mm512_mask_storeu_ps(row.wrapping_offset(shift), lanes, x);
+                if full {
+                    _mm512_storeu_ps(row.offset(shift), x);
+                } else {
+                    _mm512_mask_storeu_ps(row.wrapping_offset(shift), lanes, x);
+                }
             }
         }
     }
