@@ -925,3 +925,66 @@ fn assignment<'a>(spec: &TestSpec, relabel: &'a Relabelings, b: usize) -> Assign
 pub fn tie_tolerance(observed: f64) -> f64 {
     1e-10 * (1.0 + observed.abs())
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::stats::{Side, Sizes};
+
+    /// The three multiplies a machine may run (AVX-512 with the fused
+    /// pass, AVX2+FMA with the separate passes, the general GEMM) give the
+    /// same counts and the same f64 running maxima, bit for bit, on rows
+    /// with missing values and partial tiles. (Counts against f64 brute
+    /// force are in tests/kernel_tiles.rs and tests/missing.rs; this one
+    /// makes sure the AVX2 path, which this CPU would otherwise never run
+    /// inside the kernel, is exercised too.)
+    #[test]
+    fn every_multiply_gives_the_same_counts_and_maxima() {
+        let Some(best) = micro::Isa::detect() else {
+            return;
+        };
+        let (n_a, n_b) = (11, 10);
+        let n = n_a + n_b;
+        let features = 77;
+        let labels: Vec<u8> = (0..n).map(|i| u8::from(i >= n_a)).collect();
+        let raw: Vec<f64> = (0..features * n)
+            .map(|k| {
+                if k % 23 == 5 {
+                    f64::NAN
+                } else {
+                    ((k * 7919 % 1009) as f64) / 1009.0 + if k / n % 3 == 0 { 0.5 } else { 0.0 }
+                }
+            })
+            .collect();
+        for test in [TestKind::Student, TestKind::Welch, TestKind::RankSum] {
+            for side in [Side::Both, Side::Less] {
+                let relabel = Relabelings::draw(&labels, 600, 4);
+                let spec = TestSpec::two_group(test, side, Sizes { n_a, n_b });
+                let mut kernels = vec![Kernel::new(spec.clone(), labels.clone(), relabel.clone())];
+                let avx2 = std::arch::is_x86_feature_detected!("avx2")
+                    && std::arch::is_x86_feature_detected!("fma");
+                if best == micro::Isa::Avx512 && avx2 {
+                    let mut k = Kernel::new(spec.clone(), labels.clone(), relabel.clone());
+                    if let Weights::Panels(isa, _) = &mut k.weights {
+                        *isa = micro::Isa::Avx2Fma;
+                    }
+                    kernels.push(k);
+                }
+                kernels.push(Kernel::new(spec, labels.clone(), relabel).with_general_multiply());
+                let outcomes: Vec<(Vec<u64>, Vec<u64>)> = kernels
+                    .iter()
+                    .map(|k| {
+                        let mut scratch = KernelScratch::default();
+                        let out = k.run_chunk(&raw, features, true, &mut scratch);
+                        let exceed = out.features.iter().map(|f| f.exceed).collect();
+                        (exceed, out.null_max.iter().map(|m| m.to_bits()).collect())
+                    })
+                    .collect();
+                assert!(outcomes[0].0.iter().any(|&e| e > 0));
+                for other in &outcomes[1..] {
+                    assert_eq!(other, &outcomes[0], "{test:?} {side:?}");
+                }
+            }
+        }
+    }
+}
