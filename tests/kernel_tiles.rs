@@ -2,8 +2,8 @@
 //! in f64, one relabelling at a time, on shapes that cross tile borders:
 //! more features than one row tile (64) with a partial last tile, and more
 //! relabelings than one column tile (512) with a partial last one. Welch t
-//! stacks each tile's squared rows under its rows in one multiply, so the
-//! partial tiles are where a layout slip would show.
+//! follows each row with its squared row in one multiply, so the partial
+//! tiles are where a layout slip would show.
 //!
 //! Reference formulas: Welch t = (mean_B - mean_A) / sqrt(s_A^2/n_A +
 //! s_B^2/n_B) (Welch 1947, Biometrika 34), Student t with the pooled
@@ -104,6 +104,102 @@ fn counts_equal_brute_force_across_partial_tiles() {
                     got.extend(out.features.iter().map(|f| f.exceed));
                 }
                 assert_eq!(got, expected, "{test:?} {side:?}, chunks of {chunk}");
+            }
+        }
+    }
+}
+
+/// The step-down rank-order pass over a column range that starts inside a
+/// 16-column panel of the packed weights (as the second worker's range
+/// does: B * w / workers) and spans a partial column tile: per row, the
+/// relabelings at least as extreme as it (`exceed`) and those whose running
+/// maximum over it and all weaker rows reaches it (`reached`), against
+/// brute force in f64 here. The t statistics are monotone maps of the
+/// kernel statistics, the same map for every feature of a test (standardized
+/// rows: fixed total sum of squares), so counts and running maxima compare.
+/// The same pass on the general GEMM (`matrixmultiply`) must give the same
+/// counts and the same f64 maxima bit for bit.
+#[test]
+fn rank_pass_over_a_range_inside_a_panel_equals_brute_force() {
+    use riffle::kernel::RankState;
+    let (n_a, n_b) = (9, 8);
+    let n = n_a + n_b; // 17: not a multiple of 8 or 16
+    let features = 101;
+    let perms = 700;
+    let labels: Vec<u8> = (0..n).map(|i| u8::from(i >= n_a)).collect();
+    let mut state = 5u64;
+    let raw: Vec<f64> = (0..features * n)
+        .map(|k| {
+            let shift = if (k / n) % 4 == 0 && labels[k % n] == 1 {
+                0.8
+            } else {
+                0.0
+            };
+            splitmix(&mut state) + shift
+        })
+        .collect();
+    let (col0, cols) = (37, 600); // 37 = 2 * 16 + 5; 600 = 512 + 88
+    for test in [TestKind::Student, TestKind::Welch] {
+        for side in [Side::Both, Side::Less] {
+            let relabel = Relabelings::draw(&labels, perms, 9);
+            let classes: Vec<Vec<u8>> = (0..relabel.count)
+                .map(|b| relabel.row(b).to_vec())
+                .collect();
+            let spec = TestSpec::two_group(test, side, Sizes { n_a, n_b });
+            let orient = |t: f64| match side {
+                Side::Both => t.abs(),
+                Side::Greater => t,
+                Side::Less => -t,
+            };
+            let mut results = Vec::new();
+            for general in [false, true] {
+                let mut kernel = Kernel::new(spec.clone(), labels.clone(), relabel.clone());
+                if general {
+                    kernel = kernel.with_general_multiply();
+                }
+                let mut scratch = KernelScratch::default();
+                let prepared = kernel.run_chunk(&raw, features, false, &mut scratch);
+                // Rows in ascending order of their observed statistic.
+                let mut order: Vec<usize> = (0..features).collect();
+                let obs_of = |k: usize| prepared.features[k].prepared.kernel_obs;
+                order.sort_by(|&x, &y| obs_of(x).total_cmp(&obs_of(y)));
+                let standardized: Vec<f64> = order
+                    .iter()
+                    .flat_map(|&k| prepared.standardized[k * n..(k + 1) * n].to_vec())
+                    .collect();
+                let obs: Vec<f64> = order.iter().map(|&k| obs_of(k)).collect();
+                let mut rank = RankState::new(col0, cols, false);
+                let (mut exceed, mut reached) = (vec![0u64; features], vec![0u64; features]);
+                kernel.rank_rows(
+                    &standardized,
+                    &obs,
+                    &mut rank,
+                    &mut exceed,
+                    &mut reached,
+                    &mut scratch,
+                );
+                results.push((order, exceed, reached, rank.maxima.clone()));
+            }
+            let (order, exceed, reached, maxima) = &results[0];
+            assert_eq!(&results[1].1, exceed, "{test:?} {side:?}: general GEMM");
+            assert_eq!(&results[1].2, reached, "{test:?} {side:?}: general GEMM");
+            let bits = |m: &[f64]| m.iter().map(|v| v.to_bits()).collect::<Vec<_>>();
+            assert_eq!(bits(&results[1].3), bits(maxima), "{test:?} {side:?}");
+            // Brute force in f64, rows in the same order.
+            let mut running = vec![f64::NEG_INFINITY; cols];
+            for (pos, &k) in order.iter().enumerate() {
+                let row = &raw[k * n..(k + 1) * n];
+                let observed = orient(t_statistic(test, row, &labels));
+                let reach = observed - 1e-10 * (1.0 + observed.abs());
+                let mut want_exceed = 0;
+                for (j, m) in running.iter_mut().enumerate() {
+                    let t = orient(t_statistic(test, row, &classes[col0 + j]));
+                    want_exceed += u64::from(t >= reach);
+                    *m = m.max(t);
+                }
+                let want_reached = running.iter().filter(|&&m| m >= reach).count() as u64;
+                assert_eq!(exceed[pos], want_exceed, "{test:?} {side:?} row {pos}");
+                assert_eq!(reached[pos], want_reached, "{test:?} {side:?} row {pos}");
             }
         }
     }

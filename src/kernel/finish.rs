@@ -54,18 +54,22 @@ impl Kernel {
     /// ill-conditioned entries (variance lost to cancellation) become NaN so
     /// that they are recomputed in f64.
     pub(super) fn welch_tile(&self, sums: &mut [f32], squares: &[f32]) {
+        welch_row(sums, squares, self.welch_constants());
+        orient_all(self.spec.side, sums);
+    }
+
+    /// Constants of the Welch finisher, from the group sizes.
+    pub(super) fn welch_constants(&self) -> WelchConstants {
         let sizes = self.spec.sizes;
         let (na, nb) = (sizes.n_a as f32, sizes.n_b as f32);
         let (inv_na, inv_nb) = (1.0 / na, 1.0 / nb);
-        let constants = WelchConstants {
+        WelchConstants {
             total_sq: na + nb - 1.0,
             inv_na,
             inv_nb,
             var_a: 1.0 / ((na - 1.0) * na),
             var_b: 1.0 / ((nb - 1.0) * nb),
             diff: inv_na + inv_nb,
-        };
-        welch_row(sums, squares, constants);
-        orient_all(self.spec.side, sums);
+        }
     }
 }

@@ -17,10 +17,13 @@ mod exact_rows;
 mod finish;
 mod histogram;
 mod masked;
+mod micro;
 mod sequential;
 mod simd;
 
 pub use histogram::{NullHistogram, UpperTail};
+pub use micro::PackedWeights;
+use micro::RowFlags;
 use simd::orient_all;
 
 /// Features per GEMM tile (rows of the left operand).
@@ -41,12 +44,30 @@ pub struct Kernel {
     stop_after: Option<u64>,
     observed: Vec<u8>,
     relabel: Relabelings,
-    /// `n x B` row-major: 1.0 where relabelling b puts sample i in group B.
-    weights: Vec<f32>,
+    /// `n x B` (times the width): 1.0 where relabelling b puts sample i in
+    /// group B.
+    weights: Weights,
     /// The squared weights (Pearson rows with missing values: the permuted
     /// trait's sum of squares over their observed samples), built when
-    /// first needed.
-    squared_weights: std::sync::OnceLock<Vec<f32>>,
+    /// first needed, in the same layout.
+    squared_weights: std::sync::OnceLock<Weights>,
+}
+
+/// The weights in the layout of the multiply that reads them.
+enum Weights {
+    /// Row-major, for the general GEMM (`matrixmultiply`).
+    RowMajor(Vec<f32>),
+    /// Packed once for the kernel's own microkernel (`micro.rs`).
+    Panels(micro::Isa, micro::Panels),
+}
+
+impl Weights {
+    fn squared(&self) -> Weights {
+        match self {
+            Weights::RowMajor(w) => Weights::RowMajor(w.iter().map(|w| w * w).collect()),
+            Weights::Panels(isa, p) => Weights::Panels(*isa, p.map(|w| w * w)),
+        }
+    }
 }
 
 /// Per-feature outcome of a chunk.
@@ -95,16 +116,35 @@ impl Kernel {
         let r = spec.width();
         let b = relabel.count;
         let columns = b * r;
-        let mut weights = vec![0f32; n * columns];
         let mut unit_weights = vec![0f64; n * r];
-        for j in 0..b {
-            spec.weights(assignment(&spec, &relabel, j), &mut unit_weights);
-            for i in 0..n {
-                for c in 0..r {
-                    weights[i * columns + j * r + c] = unit_weights[i * r + c] as f32;
+        // Packed straight away where the microkernel runs, so that the
+        // row-major copy is never held beside the packed one.
+        let weights = match micro::Isa::detect() {
+            Some(isa) => {
+                let mut panels = micro::Panels::zeros(n, columns);
+                for j in 0..b {
+                    spec.weights(assignment(&spec, &relabel, j), &mut unit_weights);
+                    for i in 0..n {
+                        for c in 0..r {
+                            panels.set(i, j * r + c, unit_weights[i * r + c] as f32);
+                        }
+                    }
                 }
+                Weights::Panels(isa, panels)
             }
-        }
+            None => {
+                let mut weights = vec![0f32; n * columns];
+                for j in 0..b {
+                    spec.weights(assignment(&spec, &relabel, j), &mut unit_weights);
+                    for i in 0..n {
+                        for c in 0..r {
+                            weights[i * columns + j * r + c] = unit_weights[i * r + c] as f32;
+                        }
+                    }
+                }
+                Weights::RowMajor(weights)
+            }
+        };
         Kernel {
             inverse_group_sizes: spec.group_sizes.iter().map(|&g| 1.0 / g as f32).collect(),
             spec,
@@ -119,6 +159,23 @@ impl Kernel {
 
     pub fn with_pooled_null(mut self, pooled_null: bool) -> Self {
         self.pooled_null = pooled_null;
+        if pooled_null {
+            // The pooled histogram bins the f32 statistics themselves, so
+            // its counts depend on the multiply's rounding: it keeps the
+            // general GEMM, whose bits earlier versions produced.
+            self = self.with_general_multiply();
+        }
+        self
+    }
+
+    /// Uses the general GEMM (`matrixmultiply`) instead of the packed
+    /// microkernel: the reference the microkernel is measured and tested
+    /// against.
+    pub fn with_general_multiply(mut self) -> Self {
+        if let Weights::Panels(_, panels) = &self.weights {
+            self.weights = Weights::RowMajor(panels.to_row_major());
+            self.squared_weights = std::sync::OnceLock::new();
+        }
         self
     }
 
@@ -244,20 +301,28 @@ impl Kernel {
         } else {
             Vec::new()
         };
-        self.for_each_tile_row(&rows_view, 0, b_total, &mut s.tiles, |k, col0, tile| {
-            let z = &standardized[k * n..(k + 1) * n];
-            let row = RowCheck::new(obs[k], rows_view.band[k], rows_view.slack[k]);
-            exceed[k] += self.count_row(
-                tile,
-                &row,
-                z,
-                col0,
-                &mut floors[col0..col0 + tile.len()],
-                &mut null_max[col0..col0 + tile.len()],
-                None,
-                &mut null_hist,
-            );
-        });
+        self.for_each_counted_row(
+            &rows_view,
+            &obs,
+            0,
+            b_total,
+            &mut s.tiles,
+            floors,
+            |k, col0, tile, row, flags, floors| {
+                let z = &standardized[k * n..(k + 1) * n];
+                exceed[k] += self.count_row(
+                    tile,
+                    row,
+                    flags,
+                    z,
+                    col0,
+                    floors,
+                    &mut null_max[col0..col0 + tile.len()],
+                    None,
+                    &mut null_hist,
+                );
+            },
+        );
         for (k, &r) in s.tested.iter().enumerate() {
             features[r].exceed = exceed[k];
             features[r].relabelings = b_total as u64;
@@ -287,14 +352,15 @@ impl Kernel {
         let n = self.units();
         let rows_view = self.load_rows(standardized, obs, &mut scratch.rows);
         let base = state.col0;
-        self.for_each_tile_row(
+        self.for_each_counted_row(
             &rows_view,
+            obs,
             state.col0,
             state.cols,
             &mut scratch.tiles,
-            |k, col0, tile| {
+            &mut state.floors,
+            |k, col0, tile, row, flags, floors| {
                 let z = &standardized[k * n..(k + 1) * n];
-                let row = RowCheck::new(obs[k], rows_view.band[k], rows_view.slack[k]);
                 let range = col0 - base..col0 - base + tile.len();
                 let mut hits = 0u64;
                 let recording = !state.records.is_empty();
@@ -304,10 +370,11 @@ impl Kernel {
                 }
                 exceed[k] += self.count_row(
                     tile,
-                    &row,
+                    row,
+                    flags,
                     z,
                     col0,
-                    &mut state.floors[range.clone()],
+                    floors,
                     &mut state.maxima[range.clone()],
                     Some(&mut hits),
                     &mut state.histogram,
@@ -342,14 +409,13 @@ impl Kernel {
         let f32_or_zero = |v: f64| if v.is_nan() { 0.0 } else { v as f32 };
         buffers.z32.clear();
         if squares {
-            // Each block of ROW_TILE rows is followed by its squares, so
-            // that one GEMM call (sharing one packing of the weights) gives
-            // both the sums and the sums of squares.
-            for block in standardized.chunks(ROW_TILE * n.max(1)) {
-                buffers.z32.extend(block.iter().map(|&v| f32_or_zero(v)));
-                buffers
-                    .z32
-                    .extend(block.iter().map(|&v| f32_or_zero(v * v)));
+            // Each row is followed by its squares, so that one GEMM call
+            // (sharing the weights) gives both the sums and the sums of
+            // squares, and both sit in one register block of the
+            // microkernel, which finishes Welch t there.
+            for row in standardized.chunks(n.max(1)) {
+                buffers.z32.extend(row.iter().map(|&v| f32_or_zero(v)));
+                buffers.z32.extend(row.iter().map(|&v| f32_or_zero(v * v)));
             }
         } else {
             buffers
@@ -413,76 +479,179 @@ impl Kernel {
         tiles: &mut TileBuffers,
         mut visit: impl FnMut(usize, usize, &[f32]),
     ) {
-        let n = self.units();
         let r = self.spec.width();
-        let squares = self.spec.test.needs_squares();
-        // Welch stacks each block's squared rows under its rows (see
-        // `load_rows`): one GEMM of twice the rows.
-        let stack = if squares { 2 } else { 1 };
-        tiles.sums.resize(stack * ROW_TILE * COL_TILE * r, 0.0);
+        let stack = if self.spec.test.needs_squares() { 2 } else { 1 };
         let col_end = col_start + cols;
         for row0 in (0..rows.rows).step_by(ROW_TILE) {
             let rt = ROW_TILE.min(rows.rows - row0);
             for col0 in (col_start..col_end).step_by(COL_TILE) {
                 let ct = COL_TILE.min(col_end - col0);
-                self.multiply(
-                    &rows.z32[stack * row0 * n..],
-                    stack * rt,
-                    col0 * r,
-                    ct * r,
-                    &mut tiles.sums,
-                );
-                let observed = &rows.observed[row0..row0 + rt];
-                let masked = observed.iter().any(|&m| m < n);
-                // Sign flips keep the observed pairs: no mask GEMM; nor
-                // for rows computed one by one (`exact_rows`).
-                let exact = masked && self.exact_masked();
-                let mask_gemm = masked && !exact && self.spec.test.design() != DesignKind::Paired;
-                if mask_gemm {
-                    tiles.masks.resize(ROW_TILE * COL_TILE * r, 0.0);
-                    let masks = &mut tiles.masks;
-                    self.multiply(&rows.mask32[row0 * n..], rt, col0 * r, ct * r, masks);
+                self.finished_tile(rows, row0, rt, col0, ct, tiles);
+                for i in 0..rt {
+                    let at = stack * i * ct * r;
+                    visit(row0 + i, col0, &tiles.sums[at..at + ct]);
                 }
-                let trait_masked = mask_gemm && self.spec.test.design() == DesignKind::Trait;
-                if trait_masked {
-                    tiles.mask_squares.resize(ROW_TILE * COL_TILE, 0.0);
-                    let squared = self
-                        .squared_weights
-                        .get_or_init(|| self.weights.iter().map(|w| w * w).collect());
-                    let (a, out) = (&rows.mask32[row0 * n..], &mut tiles.mask_squares);
-                    self.multiply_with(squared, a, rt, col0, ct, out);
+            }
+        }
+    }
+
+    /// `for_each_tile_row` with the fast counting pass done:
+    /// `visit(row, first_column, oriented_statistics, check, flags,
+    /// floors_of_those_columns)`; `floors` covers `col_start..`. Where the
+    /// finisher only orients (one sum per relabelling, complete rows) and
+    /// the microkernel has AVX-512, orienting and the pass run on the
+    /// registers of the multiply (`micro::multiply_counted`).
+    #[allow(clippy::too_many_arguments)]
+    fn for_each_counted_row(
+        &self,
+        rows: &RowsView<'_>,
+        obs: &[f64],
+        col_start: usize,
+        cols: usize,
+        tiles: &mut TileBuffers,
+        floors: &mut [f32],
+        mut visit: impl FnMut(usize, usize, &[f32], &RowCheck, &RowFlags, &mut [f32]),
+    ) {
+        let n = self.units();
+        let r = self.spec.width();
+        // Taken out of `tiles` for the loop (the tile buffers are borrowed
+        // mutably beside it) and put back for the next call.
+        let mut all_checks = std::mem::take(&mut tiles.checks);
+        all_checks.clear();
+        all_checks.extend(
+            obs.iter()
+                .enumerate()
+                .map(|(k, &o)| RowCheck::new(o, rows.band[k], rows.slack[k])),
+        );
+        let squares = self.spec.test.needs_squares();
+        let stack = if squares { 2 } else { 1 };
+        let welch = squares.then(|| self.welch_constants());
+        let fusable = match &self.weights {
+            Weights::Panels(micro::Isa::Avx512, panels) => Some(panels),
+            _ => None,
+        }
+        .filter(|_| r == 1 && self.spec.model.is_none());
+        tiles.flags.resize(ROW_TILE, RowFlags::default());
+        let col_end = col_start + cols;
+        for row0 in (0..rows.rows).step_by(ROW_TILE) {
+            let rt = ROW_TILE.min(rows.rows - row0);
+            let checks = &all_checks[row0..row0 + rt];
+            let complete = rows.observed[row0..row0 + rt].iter().all(|&m| m == n);
+            for col0 in (col_start..col_end).step_by(COL_TILE) {
+                let ct = COL_TILE.min(col_end - col0);
+                let floors = &mut floors[col0 - col_start..col0 - col_start + ct];
+                let fused = fusable.filter(|_| complete);
+                if let Some(panels) = fused {
+                    tiles.sums.resize(stack * ROW_TILE * COL_TILE, 0.0);
+                    tiles.bounds.clear();
+                    tiles.bounds.extend(checks.iter().map(|c| micro::Bounds {
+                        above: c.above,
+                        below: c.below,
+                        slack: c.slack,
+                    }));
+                    micro::multiply_counted(
+                        panels,
+                        &rows.z32[stack * row0 * n..],
+                        stack * rt,
+                        col0,
+                        ct,
+                        &mut tiles.sums,
+                        self.spec.side,
+                        welch,
+                        &tiles.bounds,
+                        floors,
+                        &mut tiles.flags,
+                    );
+                } else {
+                    self.finished_tile(rows, row0, rt, col0, ct, tiles);
                 }
-                let (sums, sq) = tiles.sums.split_at_mut(rt * ct * r);
-                for (i, &row_observed) in observed.iter().enumerate() {
-                    let wide = &mut sums[i * ct * r..(i + 1) * ct * r];
-                    if exact && row_observed < n {
-                        let k = row0 + i;
-                        self.exact_tile(&rows.z64[k * n..(k + 1) * n], col0, &mut wide[..ct]);
-                    } else if masked && row_observed < n {
-                        let squares = if squares {
-                            &sq[i * ct..(i + 1) * ct]
-                        } else if trait_masked {
-                            &tiles.mask_squares[i * ct..(i + 1) * ct]
-                        } else {
-                            &[]
-                        };
-                        let masks = if mask_gemm {
-                            &tiles.masks[i * ct * r..(i + 1) * ct * r]
-                        } else {
-                            &[]
-                        };
-                        self.masked_tile(wide, squares, masks, row_observed);
-                    } else if squares {
-                        self.welch_tile(wide, &sq[i * ct..(i + 1) * ct]);
-                    } else if self.spec.model.is_some() {
-                        self.model_tile(wide, ct);
-                    } else if r > 1 {
-                        self.between_groups_tile(wide, ct);
-                    } else {
-                        orient_all(self.spec.side, wide);
+                for (i, check) in checks.iter().enumerate() {
+                    let at = stack * i * ct * r;
+                    let tile = &tiles.sums[at..at + ct];
+                    if fused.is_none() {
+                        // Scanned just before the row's visit: the floors
+                        // are as high as earlier rows left them.
+                        tiles.flags[i] =
+                            simd::scan_row(tile, floors, check.above, check.below, check.slack);
                     }
-                    visit(row0 + i, col0, &wide[..ct]);
+                    visit(row0 + i, col0, tile, check, &tiles.flags[i], floors);
                 }
+            }
+        }
+        tiles.checks = all_checks;
+    }
+
+    /// One tile's multiply (and mask multiplies) and finisher: row i's
+    /// oriented statistics end up in `tiles.sums[i * ct * r..][..ct]`.
+    fn finished_tile(
+        &self,
+        rows: &RowsView<'_>,
+        row0: usize,
+        rt: usize,
+        col0: usize,
+        ct: usize,
+        tiles: &mut TileBuffers,
+    ) {
+        let n = self.units();
+        let r = self.spec.width();
+        let squares = self.spec.test.needs_squares();
+        // Welch follows each row with its squares (see `load_rows`): one
+        // GEMM of twice the rows.
+        let stack = if squares { 2 } else { 1 };
+        tiles.sums.resize(stack * ROW_TILE * COL_TILE * r, 0.0);
+        self.multiply(
+            &rows.z32[stack * row0 * n..],
+            stack * rt,
+            col0 * r,
+            ct * r,
+            &mut tiles.sums,
+        );
+        let observed = &rows.observed[row0..row0 + rt];
+        let masked = observed.iter().any(|&m| m < n);
+        // Sign flips keep the observed pairs: no mask GEMM; nor for rows
+        // computed one by one (`exact_rows`).
+        let exact = masked && self.exact_masked();
+        let mask_gemm = masked && !exact && self.spec.test.design() != DesignKind::Paired;
+        if mask_gemm {
+            tiles.masks.resize(ROW_TILE * COL_TILE * r, 0.0);
+            let masks = &mut tiles.masks;
+            self.multiply(&rows.mask32[row0 * n..], rt, col0 * r, ct * r, masks);
+        }
+        let trait_masked = mask_gemm && self.spec.test.design() == DesignKind::Trait;
+        if trait_masked {
+            tiles.mask_squares.resize(ROW_TILE * COL_TILE, 0.0);
+            let squared = self.squared_weights.get_or_init(|| self.weights.squared());
+            let (a, out) = (&rows.mask32[row0 * n..], &mut tiles.mask_squares);
+            self.multiply_with(squared, a, rt, col0, ct, out);
+        }
+        for (i, &row_observed) in observed.iter().enumerate() {
+            let row = &mut tiles.sums[stack * i * ct * r..(stack * i + stack) * ct * r];
+            let (wide, sq) = row.split_at_mut(ct * r);
+            if exact && row_observed < n {
+                let k = row0 + i;
+                self.exact_tile(&rows.z64[k * n..(k + 1) * n], col0, &mut wide[..ct]);
+            } else if masked && row_observed < n {
+                let squares = if squares {
+                    &sq[..ct]
+                } else if trait_masked {
+                    &tiles.mask_squares[i * ct..(i + 1) * ct]
+                } else {
+                    &[]
+                };
+                let masks = if mask_gemm {
+                    &tiles.masks[i * ct * r..(i + 1) * ct * r]
+                } else {
+                    &[]
+                };
+                self.masked_tile(wide, squares, masks, row_observed);
+            } else if squares {
+                self.welch_tile(wide, &sq[..ct]);
+            } else if self.spec.model.is_some() {
+                self.model_tile(wide, ct);
+            } else if r > 1 {
+                self.between_groups_tile(wide, ct);
+            } else {
+                orient_all(self.spec.side, wide);
             }
         }
     }
@@ -548,16 +717,22 @@ impl Kernel {
     /// `multiply` against other weights of the same shape.
     fn multiply_with(
         &self,
-        weights: &[f32],
+        weights: &Weights,
         a: &[f32],
         rows: usize,
         col0: usize,
         cols: usize,
         out: &mut [f32],
     ) {
+        let weights = match weights {
+            Weights::Panels(isa, panels) => {
+                return micro::multiply(*isa, panels, a, rows, col0, cols, out);
+            }
+            Weights::RowMajor(weights) => weights,
+        };
         let n = self.units();
-        assert!(weights.len() == self.weights.len());
         let total = self.relabel.count * self.spec.width();
+        assert!(weights.len() == n * total);
         // SAFETY: the slices cover rows x n, n x cols (at stride total) and
         // rows x cols elements with the strides given.
         unsafe {
@@ -589,6 +764,7 @@ impl Kernel {
         &self,
         tile: &[f32],
         row: &RowCheck,
+        flags: &RowFlags,
         z: &[f64],
         col0: usize,
         floors: &mut [f32],
@@ -601,12 +777,11 @@ impl Kernel {
                 histogram[NullHistogram::bin(v)] += 1;
             }
         }
-        // Fast pass (vectorizes): clear exceedances, and whether any value
-        // needs f64 — near the observed one, or above a running maximum.
-        let simd::RowScan { clear, near, over } =
-            simd::scan_row(tile, &floors[..tile.len()], row.above, row.below, row.slack);
-        let mut count = u64::from(clear);
-        if !(near || over) {
+        // The fast pass (`flags`) counted the clear exceedances and flagged
+        // the blocks where a value needs f64: near the observed one, or
+        // above a running maximum.
+        let mut count = u64::from(flags.clear);
+        if flags.near == 0 && flags.over == 0 {
             if let Some(reached) = reached {
                 *reached += simd::count_at_least(maxima, row.threshold);
             }
@@ -615,8 +790,9 @@ impl Kernel {
         let mut cache = None;
         let mut exact_at =
             |j: usize| self.exact_stat_cached(z, col0 + j, row.slack > 0.0, &mut cache);
-        if near {
-            for (j, &v) in tile.iter().enumerate() {
+        for range in flags.ranges(flags.near, tile.len()) {
+            for j in range {
+                let v = tile[j];
                 if !(v > row.above || v < row.below) {
                     let e = exact_at(j);
                     count += u64::from(e >= row.threshold);
@@ -632,9 +808,9 @@ impl Kernel {
                 }
             }
         }
-        if over {
-            for (j, &v) in tile.iter().enumerate() {
-                if v + row.slack > floors[j] {
+        for range in flags.ranges(flags.over, tile.len()) {
+            for j in range {
+                if tile[j] + row.slack > floors[j] {
                     let e = exact_at(j);
                     if e > maxima[j] {
                         maxima[j] = e;
@@ -651,6 +827,7 @@ impl Kernel {
 }
 
 /// The observed statistic of a row and its f32 decision bounds.
+#[derive(Clone, Copy)]
 struct RowCheck {
     above: f32,
     below: f32,
@@ -731,6 +908,12 @@ struct TileBuffers {
     masks: Vec<f32>,
     /// Masks against the squared weights (Pearson).
     mask_squares: Vec<f32>,
+    /// Per row of the rows loaded: observed statistic and bounds.
+    checks: Vec<RowCheck>,
+    /// The same bounds for the microkernel, per row of a tile.
+    bounds: Vec<micro::Bounds>,
+    /// Fast-pass results per row of a tile.
+    flags: Vec<RowFlags>,
 }
 
 struct RowsView<'a> {
@@ -759,4 +942,67 @@ fn assignment<'a>(spec: &TestSpec, relabel: &'a Relabelings, b: usize) -> Assign
 /// statistics computed in a different order differ only in the last bits.
 pub fn tie_tolerance(observed: f64) -> f64 {
     1e-10 * (1.0 + observed.abs())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::stats::{Side, Sizes};
+
+    /// The three multiplies a machine may run (AVX-512 with the fused
+    /// pass, AVX2+FMA with the separate passes, the general GEMM) give the
+    /// same counts and the same f64 running maxima, bit for bit, on rows
+    /// with missing values and partial tiles. (Counts against f64 brute
+    /// force are in tests/kernel_tiles.rs and tests/missing.rs; this one
+    /// makes sure the AVX2 path, which this CPU would otherwise never run
+    /// inside the kernel, is exercised too.)
+    #[test]
+    fn every_multiply_gives_the_same_counts_and_maxima() {
+        let Some(best) = micro::Isa::detect() else {
+            return;
+        };
+        let (n_a, n_b) = (11, 10);
+        let n = n_a + n_b;
+        let features = 77;
+        let labels: Vec<u8> = (0..n).map(|i| u8::from(i >= n_a)).collect();
+        let raw: Vec<f64> = (0..features * n)
+            .map(|k| {
+                if k % 23 == 5 {
+                    f64::NAN
+                } else {
+                    ((k * 7919 % 1009) as f64) / 1009.0 + if k / n % 3 == 0 { 0.5 } else { 0.0 }
+                }
+            })
+            .collect();
+        for test in [TestKind::Student, TestKind::Welch, TestKind::RankSum] {
+            for side in [Side::Both, Side::Less] {
+                let relabel = Relabelings::draw(&labels, 600, 4);
+                let spec = TestSpec::two_group(test, side, Sizes { n_a, n_b });
+                let mut kernels = vec![Kernel::new(spec.clone(), labels.clone(), relabel.clone())];
+                let avx2 = std::arch::is_x86_feature_detected!("avx2")
+                    && std::arch::is_x86_feature_detected!("fma");
+                if best == micro::Isa::Avx512 && avx2 {
+                    let mut k = Kernel::new(spec.clone(), labels.clone(), relabel.clone());
+                    if let Weights::Panels(isa, _) = &mut k.weights {
+                        *isa = micro::Isa::Avx2Fma;
+                    }
+                    kernels.push(k);
+                }
+                kernels.push(Kernel::new(spec, labels.clone(), relabel).with_general_multiply());
+                let outcomes: Vec<(Vec<u64>, Vec<u64>)> = kernels
+                    .iter()
+                    .map(|k| {
+                        let mut scratch = KernelScratch::default();
+                        let out = k.run_chunk(&raw, features, true, &mut scratch);
+                        let exceed = out.features.iter().map(|f| f.exceed).collect();
+                        (exceed, out.null_max.iter().map(|m| m.to_bits()).collect())
+                    })
+                    .collect();
+                assert!(outcomes[0].0.iter().any(|&e| e > 0));
+                for other in &outcomes[1..] {
+                    assert_eq!(other, &outcomes[0], "{test:?} {side:?}");
+                }
+            }
+        }
+    }
 }

@@ -66,9 +66,17 @@ impl Kernel {
                     let z = &z_open[k * n..(k + 1) * n];
                     let row = RowCheck::new(obs_open[k], rows_view.band[k], rows_view.slack[k]);
                     let width = tile.len();
+                    let flags = super::simd::scan_row(
+                        tile,
+                        &floors[..width],
+                        row.above,
+                        row.below,
+                        row.slack,
+                    );
                     let hits = self.count_row(
                         tile,
                         &row,
+                        &flags,
                         z,
                         col0,
                         &mut floors[..width],

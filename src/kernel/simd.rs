@@ -9,6 +9,7 @@
 //! the same order (Rust never contracts to fused multiply-add on its own),
 //! so both versions give identical bits.
 
+use super::micro::RowFlags;
 use crate::stats::Side;
 
 /// Defines `$name` that runs `$body` compiled with AVX2 where the CPU has
@@ -35,35 +36,34 @@ macro_rules! multiversion {
     };
 }
 
-/// What the fast pass over one tile row finds.
-pub(super) struct RowScan {
-    /// Values clearly above the observed statistic (beyond its error band).
-    pub clear: u32,
-    /// Whether any value lies within the band (or is NaN): those need f64.
-    pub near: bool,
-    /// Whether any value may exceed its relabelling's running maximum.
-    pub over: bool,
-}
+/// Columns per flag bit of `scan_row`.
+pub(super) const SCAN_BLOCK: usize = 32;
 
 multiversion! {
-    /// One branch-free pass: counts and flags as `RowScan` describes;
-    /// `slack` widens the comparison with the floors (masked rows' extra
-    /// f32 error, 0 for complete rows).
-    pub(super) fn scan_row(tile: &[f32], floors: &[f32], above: f32, below: f32, slack: f32) -> RowScan {
-        let mut clear = 0u32;
-        let mut near = 0u32;
-        let mut over = 0u32;
-        for (&v, &floor) in tile.iter().zip(floors) {
-            clear += u32::from(v > above);
-            // NaN compares false both ways, so it lands here.
-            near |= u32::from(!((v > above) | (v < below)));
-            over |= u32::from(v + slack > floor);
+    /// One branch-free pass per block of `SCAN_BLOCK` columns: counts and
+    /// flags as `RowFlags` describes; `slack` widens the comparison with the
+    /// floors (masked rows' extra f32 error, 0 for complete rows).
+    pub(super) fn scan_row(tile: &[f32], floors: &[f32], above: f32, below: f32, slack: f32) -> RowFlags {
+        assert!(tile.len() <= 64 * SCAN_BLOCK, "too many columns for the flags");
+        let mut flags = RowFlags {
+            block: SCAN_BLOCK,
+            ..RowFlags::default()
+        };
+        for (b, (tile, floors)) in tile.chunks(SCAN_BLOCK).zip(floors.chunks(SCAN_BLOCK)).enumerate() {
+            let mut clear = 0u32;
+            let mut near = 0u32;
+            let mut over = 0u32;
+            for (&v, &floor) in tile.iter().zip(floors) {
+                clear += u32::from(v > above);
+                // NaN compares false both ways, so it lands here.
+                near |= u32::from(!((v > above) | (v < below)));
+                over |= u32::from(v + slack > floor);
+            }
+            flags.clear += clear;
+            flags.near |= u64::from(near) << b;
+            flags.over |= u64::from(over) << b;
         }
-        RowScan {
-            clear,
-            near: near != 0,
-            over: over != 0,
-        }
+        flags
     }
 }
 
@@ -159,7 +159,21 @@ mod tests {
             for slack in [0.0, 0.2] {
                 let got = scan_row(&tile, &floors, 1.5, 1.0, slack);
                 let want = scan_by_hand(&tile, &floors, 1.5, 1.0, slack);
-                assert_eq!((got.clear, got.near, got.over), want, "length {len}");
+                let (mut near, mut over) = (false, false);
+                for b in 0..64 {
+                    let range = b * SCAN_BLOCK..((b + 1) * SCAN_BLOCK).min(len);
+                    if range.is_empty() {
+                        assert_eq!((got.near >> b, got.over >> b), (0, 0), "length {len}");
+                        break;
+                    }
+                    let (_, n, o) =
+                        scan_by_hand(&tile[range.clone()], &floors[range], 1.5, 1.0, slack);
+                    assert_eq!(got.near >> b & 1 == 1, n, "length {len} block {b}");
+                    assert_eq!(got.over >> b & 1 == 1, o, "length {len} block {b}");
+                    near |= n;
+                    over |= o;
+                }
+                assert_eq!((got.clear, near, over), want, "length {len}");
             }
         }
     }
