@@ -4,7 +4,7 @@
 
 mod common;
 
-use common::{options, scan_with_sheet, Table, TestRng};
+use common::{least_squares, options, scan_with_sheet, Table, TestRng};
 use riffle::design::DesignColumns;
 use riffle::stats::{DesignKind, Side, TestKind};
 
@@ -398,7 +398,7 @@ fn strata_keep_a_confounded_batch_calibrated() {
 /// elimination (textbook, independent of riffle's Gram–Schmidt): returns the
 /// coefficients and the t statistic of column `j`.
 fn ols_t(columns: &[Vec<f64>], y: &[f64], j: usize) -> (f64, f64) {
-    let (beta, inverse) = least_squares(columns, y);
+    let (beta, inverse, _) = least_squares(columns, y);
     let (n, p) = (y.len(), columns.len());
     let rss: f64 = (0..n)
         .map(|i| {
@@ -410,45 +410,9 @@ fn ols_t(columns: &[Vec<f64>], y: &[f64], j: usize) -> (f64, f64) {
     (beta[j], beta[j] / (sigma2 * inverse[j][j]).sqrt())
 }
 
-/// Coefficients and (X'X)^-1 of the least-squares fit of y on `columns`.
-fn least_squares(columns: &[Vec<f64>], y: &[f64]) -> (Vec<f64>, Vec<Vec<f64>>) {
-    let p = columns.len();
-    let n = y.len();
-    let mut a = vec![vec![0.0; 2 * p]; p];
-    for r in 0..p {
-        for c in 0..p {
-            a[r][c] = (0..n).map(|i| columns[r][i] * columns[c][i]).sum();
-        }
-        a[r][p + r] = 1.0;
-    }
-    for c in 0..p {
-        let pivot = (c..p)
-            .max_by(|&x, &y| a[x][c].abs().total_cmp(&a[y][c].abs()))
-            .unwrap();
-        a.swap(c, pivot);
-        let d = a[c][c];
-        a[c].iter_mut().for_each(|v| *v /= d);
-        for r in 0..p {
-            if r != c {
-                let f = a[r][c];
-                let row_c = a[c].clone();
-                a[r].iter_mut().zip(&row_c).for_each(|(v, w)| *v -= f * w);
-            }
-        }
-    }
-    let inverse: Vec<Vec<f64>> = a.iter().map(|row| row[p..].to_vec()).collect();
-    let xty: Vec<f64> = (0..p)
-        .map(|r| (0..n).map(|i| columns[r][i] * y[i]).sum())
-        .collect();
-    let beta = (0..p)
-        .map(|r| (0..p).map(|c| inverse[r][c] * xty[c]).sum())
-        .collect();
-    (beta, inverse)
-}
-
 /// Fitted values of the least-squares fit of y on `columns`.
 fn fitted(columns: &[Vec<f64>], y: &[f64]) -> Vec<f64> {
-    let (beta, _) = least_squares(columns, y);
+    let (beta, _, _) = least_squares(columns, y);
     (0..y.len())
         .map(|i| (0..columns.len()).map(|r| beta[r] * columns[r][i]).sum())
         .collect()

@@ -9,7 +9,7 @@
 
 mod common;
 
-use common::{options, scan_rows, Table, TestRng};
+use common::{least_squares, options, scan_rows, Table, TestRng};
 use riffle::design::Relabelings;
 use riffle::stats::{Side, TestKind};
 
@@ -1680,50 +1680,6 @@ fn spearman_maxt_over_complete_and_masked_rows_equals_brute_force() {
             }
         }
     }
-}
-
-/// Ordinary least squares by the normal equations, solved by Gauss–Jordan
-/// elimination (textbook, independent of riffle's Gram–Schmidt): the
-/// coefficients, (X'X)^-1 and the residual sum of squares.
-fn least_squares(columns: &[Vec<f64>], y: &[f64]) -> (Vec<f64>, Vec<Vec<f64>>, f64) {
-    let p = columns.len();
-    let n = y.len();
-    let mut a = vec![vec![0.0; 2 * p]; p];
-    for r in 0..p {
-        for c in 0..p {
-            a[r][c] = (0..n).map(|i| columns[r][i] * columns[c][i]).sum();
-        }
-        a[r][p + r] = 1.0;
-    }
-    for c in 0..p {
-        let pivot = (c..p)
-            .max_by(|&x, &y| a[x][c].abs().total_cmp(&a[y][c].abs()))
-            .unwrap();
-        a.swap(c, pivot);
-        let d = a[c][c];
-        a[c].iter_mut().for_each(|v| *v /= d);
-        for r in 0..p {
-            if r != c {
-                let f = a[r][c];
-                let row_c = a[c].clone();
-                a[r].iter_mut().zip(&row_c).for_each(|(v, w)| *v -= f * w);
-            }
-        }
-    }
-    let inverse: Vec<Vec<f64>> = a.iter().map(|row| row[p..].to_vec()).collect();
-    let xty: Vec<f64> = (0..p)
-        .map(|r| (0..n).map(|i| columns[r][i] * y[i]).sum())
-        .collect();
-    let beta: Vec<f64> = (0..p)
-        .map(|r| (0..p).map(|c| inverse[r][c] * xty[c]).sum())
-        .collect();
-    let rss = (0..n)
-        .map(|i| {
-            let fit: f64 = (0..p).map(|r| beta[r] * columns[r][i]).sum();
-            (y[i] - fit) * (y[i] - fit)
-        })
-        .sum();
-    (beta, inverse, rss)
 }
 
 /// The t of column 0 (one effect column) or the extra-sum-of-squares F of
