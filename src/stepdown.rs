@@ -37,16 +37,29 @@ use crate::error::{IoContext, Result, RiffleError};
 use crate::kernel::{Kernel, KernelScratch, NullHistogram, RankState};
 
 /// External sort of standardized rows by (observed statistic, index).
+///
+/// Two half-size buffers: while one is sorted and written as a run on a
+/// background thread, the caller (the pipeline's collecting thread) fills
+/// the other, so sorting and writing overlap reading and standardizing
+/// instead of stalling them. Peak memory is the same as one full-size
+/// buffer; the run count doubles, which the merge's fixed read budget
+/// absorbs, and the merged order (a total order on (key, index)) does not
+/// depend on how the rows were split into runs.
 pub struct RowSorter {
     dir: PathBuf,
     n: usize,
+    /// Rows per buffer (half the budget).
     capacity_rows: usize,
     /// Read buffers of all runs together during the merge.
     merge_bytes: u64,
     keys: Vec<(f64, u64)>,
     rows: Vec<f64>,
     runs: Vec<PathBuf>,
+    /// The run being written; gives back its emptied buffers for reuse.
+    writing: Option<std::thread::JoinHandle<Result<RunBuffers>>>,
 }
+
+type RunBuffers = (Vec<(f64, u64)>, Vec<f64>);
 
 impl RowSorter {
     pub fn new(dir: &Path, n: usize, memory_bytes: u64) -> Result<Self> {
@@ -58,7 +71,7 @@ impl RowSorter {
     pub fn resume(dir: &Path, n: usize, memory_bytes: u64, runs: usize) -> Result<Self> {
         std::fs::create_dir_all(dir).at(dir)?;
         let per_row = (16 + 8 * n) as u64;
-        let capacity_rows = (memory_bytes / per_row).clamp(64, 1 << 24) as usize;
+        let capacity_rows = (memory_bytes / per_row / 2).clamp(32, 1 << 23) as usize;
         let paths: Vec<PathBuf> = (0..runs).map(|r| run_path(dir, r)).collect();
         for p in &paths {
             if !p.is_file() {
@@ -83,6 +96,7 @@ impl RowSorter {
             keys: Vec::new(),
             rows: Vec::new(),
             runs: paths,
+            writing: None,
         })
     }
 
@@ -90,6 +104,7 @@ impl RowSorter {
     /// returns the number of runs (for `resume`).
     pub fn commit(&mut self) -> Result<usize> {
         self.write_run()?;
+        self.wait()?;
         Ok(self.runs.len())
     }
 
@@ -108,35 +123,47 @@ impl RowSorter {
         Ok(())
     }
 
+    /// Waits for the run being written, if any, and keeps its buffers for
+    /// the next fill when the fill buffers have been handed off.
+    fn wait(&mut self) -> Result<()> {
+        let Some(handle) = self.writing.take() else {
+            return Ok(());
+        };
+        let (keys, rows) = handle
+            .join()
+            .map_err(|_| RiffleError::Internal("the run writer thread panicked".into()))??;
+        if self.keys.capacity() == 0 {
+            self.keys = keys;
+            self.rows = rows;
+        }
+        Ok(())
+    }
+
+    /// Hands the rows held in memory to a background thread that sorts and
+    /// writes them as the next run; at most one run is in flight, so at
+    /// most two buffers exist.
     fn write_run(&mut self) -> Result<()> {
         if self.keys.is_empty() {
             return Ok(());
         }
-        let mut order: Vec<usize> = (0..self.keys.len()).collect();
-        order.sort_unstable_by(|&a, &b| compare_keys(self.keys[a], self.keys[b]));
+        let keys = std::mem::take(&mut self.keys);
+        let rows = std::mem::take(&mut self.rows);
+        // The previous run's buffers, once written, become the next fill.
+        self.wait()?;
         let path = run_path(&self.dir, self.runs.len());
-        let mut out = BufWriter::with_capacity(1 << 20, File::create(&path).at(&path)?);
+        self.runs.push(path.clone());
         let n = self.n;
-        for &i in &order {
-            let (key, index) = self.keys[i];
-            out.write_all(&key.to_le_bytes()).at(&path)?;
-            out.write_all(&index.to_le_bytes()).at(&path)?;
-            for v in &self.rows[i * n..(i + 1) * n] {
-                out.write_all(&v.to_le_bytes()).at(&path)?;
-            }
-        }
-        let file = out
-            .into_inner()
-            .map_err(|e| RiffleError::io(&path, e.into_error()))?;
-        file.sync_all().at(&path)?;
-        self.runs.push(path);
-        self.keys.clear();
-        self.rows.clear();
+        let handle = std::thread::Builder::new()
+            .name("riffle-run-writer".into())
+            .spawn(move || write_sorted_run(&path, n, keys, rows))
+            .map_err(|e| RiffleError::Internal(format!("cannot start the run writer: {e}")))?;
+        self.writing = Some(handle);
         Ok(())
     }
 
     pub fn finish(mut self) -> Result<SortedRows> {
         self.write_run()?;
+        self.wait()?;
         // The sort buffers are no longer needed; the merge's read buffers
         // share a fixed budget, so many runs do not add memory.
         self.keys = Vec::new();
@@ -168,6 +195,52 @@ impl RowSorter {
             heap,
         })
     }
+}
+
+impl Drop for RowSorter {
+    // A run still being written when the sorter is dropped (an error or
+    // an interruption elsewhere) must not outlive it and write into a
+    // directory being removed.
+    fn drop(&mut self) {
+        if let Some(handle) = self.writing.take() {
+            let _ = handle.join();
+        }
+    }
+}
+
+/// Sorts one buffer and writes it as a durable run file; returns the
+/// emptied buffers.
+fn write_sorted_run(
+    path: &Path,
+    n: usize,
+    mut keys: Vec<(f64, u64)>,
+    mut rows: Vec<f64>,
+) -> Result<RunBuffers> {
+    let mut order: Vec<usize> = (0..keys.len()).collect();
+    order.sort_unstable_by(|&a, &b| compare_keys(keys[a], keys[b]));
+    let mut out = BufWriter::with_capacity(1 << 20, File::create(path).at(path)?);
+    // One record at a time through a small buffer: one write call per row
+    // instead of one per value.
+    let mut record = vec![0u8; 16 + 8 * n];
+    for &i in &order {
+        let (key, index) = keys[i];
+        record[..8].copy_from_slice(&key.to_le_bytes());
+        record[8..16].copy_from_slice(&index.to_le_bytes());
+        for (slot, v) in record[16..]
+            .chunks_exact_mut(8)
+            .zip(&rows[i * n..(i + 1) * n])
+        {
+            slot.copy_from_slice(&v.to_le_bytes());
+        }
+        out.write_all(&record).at(path)?;
+    }
+    let file = out
+        .into_inner()
+        .map_err(|e| RiffleError::io(path, e.into_error()))?;
+    file.sync_all().at(path)?;
+    keys.clear();
+    rows.clear();
+    Ok((keys, rows))
 }
 
 fn run_path(dir: &Path, run: usize) -> PathBuf {
@@ -607,4 +680,72 @@ pub fn reverse_and_scatter(
         }
     }
     Ok(())
+}
+
+#[cfg(test)]
+mod sorter_tests {
+    use super::*;
+
+    /// A row whose values are derived from its index, so that the test can
+    /// check each row travelled with its key.
+    fn row_of(index: u64) -> Vec<f64> {
+        (0..3).map(|k| index as f64 * 10.0 + k as f64).collect()
+    }
+
+    /// Keys with many ties (ties are broken by index) and both signs.
+    fn key_of(index: u64) -> f64 {
+        ((index.wrapping_mul(2_654_435_761) % 97) as f64 - 48.0) / 4.0
+    }
+
+    fn drain(sorted: &mut SortedRows) -> Vec<(f64, u64, Vec<f64>)> {
+        let mut out = Vec::new();
+        while let Some(chunk) = sorted.next_chunk(50).unwrap() {
+            for (i, (&k, &j)) in chunk.keys.iter().zip(&chunk.indices).enumerate() {
+                out.push((k, j, chunk.rows[i * 3..i * 3 + 3].to_vec()));
+            }
+        }
+        out
+    }
+
+    /// Brute force: the whole set sorted in memory by (key, index).
+    fn expected(count: u64) -> Vec<(f64, u64, Vec<f64>)> {
+        let mut all: Vec<_> = (0..count).map(|j| (key_of(j), j, row_of(j))).collect();
+        all.sort_by(|a, b| a.0.total_cmp(&b.0).then(a.1.cmp(&b.1)));
+        all
+    }
+
+    #[test]
+    fn many_background_runs_merge_to_the_in_memory_order() {
+        let dir = tempfile::tempdir().unwrap();
+        // A zero budget gives the smallest buffers (32 rows): ~30 runs,
+        // each written while the next one fills.
+        let mut sorter = RowSorter::new(dir.path(), 3, 0).unwrap();
+        for j in 0..1000u64 {
+            sorter.push(key_of(j), j, &row_of(j)).unwrap();
+        }
+        let mut sorted = sorter.finish().unwrap();
+        assert_eq!(drain(&mut sorted), expected(1000));
+    }
+
+    #[test]
+    fn resume_drops_runs_written_after_the_commit() {
+        let dir = tempfile::tempdir().unwrap();
+        let mut sorter = RowSorter::new(dir.path(), 3, 0).unwrap();
+        for j in 0..500u64 {
+            sorter.push(key_of(j), j, &row_of(j)).unwrap();
+        }
+        let committed = sorter.commit().unwrap();
+        // Rows after the commit, some already in (background) run files,
+        // then an interruption: they are pushed again after resuming.
+        for j in 500..700u64 {
+            sorter.push(key_of(j), j, &row_of(j)).unwrap();
+        }
+        drop(sorter);
+        let mut sorter = RowSorter::resume(dir.path(), 3, 0, committed).unwrap();
+        for j in 500..800u64 {
+            sorter.push(key_of(j), j, &row_of(j)).unwrap();
+        }
+        let mut sorted = sorter.finish().unwrap();
+        assert_eq!(drain(&mut sorted), expected(800));
+    }
 }
