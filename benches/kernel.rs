@@ -28,17 +28,30 @@ fn env(name: &str, default: usize) -> usize {
 /// relabelings) never fits in memory, so it is always computed in blocks.
 const GEMM_BLOCKS: [(usize, usize); 4] = [(64, 512), (128, 512), (256, 1024), (1024, 2048)];
 
-/// Plain f32 GEMM of (rows x n) by (n x cols), block by block (`rb` x `cb`
-/// outputs per sgemm call), on `threads` threads splitting the rows.
-fn gemm_rate(rows: usize, n: usize, cols: usize, threads: usize, (rb, cb): (usize, usize)) -> f64 {
-    let a: Vec<f32> = (0..rows * n)
+/// The benchmark's left (rows x n) and right (n x cols) operands.
+fn operands(rows: usize, n: usize, cols: usize) -> (Vec<f32>, Vec<f32>) {
+    let a = (0..rows * n)
         .map(|i| ((i * 7919) % 1000) as f32 / 1000.0)
         .collect();
-    let b: Vec<f32> = (0..n * cols).map(|i| ((i * 104729) % 2) as f32).collect();
+    let b = (0..n * cols).map(|i| ((i * 104729) % 2) as f32).collect();
+    (a, b)
+}
+
+/// Outputs per second of the product of `rows` left rows by `cols`
+/// columns, computed block by block (`rb` x `cb` outputs per call of
+/// `multiply(row0, block_rows, col0, block_cols, out)`), on `threads`
+/// threads splitting the rows.
+fn blocked_rate(
+    rows: usize,
+    cols: usize,
+    threads: usize,
+    (rb, cb): (usize, usize),
+    multiply: impl Fn(usize, usize, usize, usize, &mut [f32]) + Sync,
+) -> f64 {
     let started = Instant::now();
     std::thread::scope(|scope| {
         for t in 0..threads {
-            let (a, b) = (&a, &b);
+            let multiply = &multiply;
             scope.spawn(move || {
                 let mut c = vec![0f32; rb * cb];
                 let mut checksum = 0f32;
@@ -48,24 +61,7 @@ fn gemm_rate(rows: usize, n: usize, cols: usize, threads: usize, (rb, cb): (usiz
                     let rt = rb.min(hi - r0);
                     for c0 in (0..cols).step_by(cb) {
                         let ct = cb.min(cols - c0);
-                        unsafe {
-                            matrixmultiply::sgemm(
-                                rt,
-                                n,
-                                ct,
-                                1.0,
-                                a.as_ptr().add(r0 * n),
-                                n as isize,
-                                1,
-                                b.as_ptr().add(c0),
-                                cols as isize,
-                                1,
-                                0.0,
-                                c.as_mut_ptr(),
-                                ct as isize,
-                                1,
-                            );
-                        }
+                        multiply(r0, rt, c0, ct, &mut c);
                         checksum += c[0];
                     }
                 }
@@ -73,42 +69,49 @@ fn gemm_rate(rows: usize, n: usize, cols: usize, threads: usize, (rb, cb): (usiz
             });
         }
     });
-    let seconds = started.elapsed().as_secs_f64();
-    rows as f64 * cols as f64 / seconds
+    rows as f64 * cols as f64 / started.elapsed().as_secs_f64()
+}
+
+/// Plain f32 GEMM (matrixmultiply) of (rows x n) by (n x cols) in blocks.
+fn gemm_rate(rows: usize, n: usize, cols: usize, threads: usize, blocks: (usize, usize)) -> f64 {
+    let (a, b) = operands(rows, n, cols);
+    blocked_rate(rows, cols, threads, blocks, |r0, rt, c0, ct, c| {
+        // SAFETY: a holds rows x n and b n x cols values, both row-major;
+        // c holds at least rt x ct outputs (a whole block).
+        unsafe {
+            matrixmultiply::sgemm(
+                rt,
+                n,
+                ct,
+                1.0,
+                a.as_ptr().add(r0 * n),
+                n as isize,
+                1,
+                b.as_ptr().add(c0),
+                cols as isize,
+                1,
+                0.0,
+                c.as_mut_ptr(),
+                ct as isize,
+                1,
+            );
+        }
+    })
 }
 
 /// The kernel's own packed multiply (weights packed once, outside the
 /// timing, as in a scan) on the same product in 64 x 512 blocks; `None`
 /// where the CPU has no microkernel.
 fn packed_rate(rows: usize, n: usize, cols: usize, threads: usize) -> Option<f64> {
-    let (rb, cb) = (64, 512);
-    let a: Vec<f32> = (0..rows * n)
-        .map(|i| ((i * 7919) % 1000) as f32 / 1000.0)
-        .collect();
-    let b: Vec<f32> = (0..n * cols).map(|i| ((i * 104729) % 2) as f32).collect();
+    let (a, b) = operands(rows, n, cols);
     let packed = PackedWeights::new(&b, n, cols)?;
-    let started = Instant::now();
-    std::thread::scope(|scope| {
-        for t in 0..threads {
-            let (a, packed) = (&a, &packed);
-            scope.spawn(move || {
-                let mut c = vec![0f32; rb * cb];
-                let mut checksum = 0f32;
-                let lo = rows * t / threads;
-                let hi = rows * (t + 1) / threads;
-                for r0 in (lo..hi).step_by(rb) {
-                    let rt = rb.min(hi - r0);
-                    for c0 in (0..cols).step_by(cb) {
-                        let ct = cb.min(cols - c0);
-                        packed.multiply(&a[r0 * n..], rt, c0, ct, &mut c);
-                        checksum += c[0];
-                    }
-                }
-                std::hint::black_box(checksum);
-            });
-        }
-    });
-    Some(rows as f64 * cols as f64 / started.elapsed().as_secs_f64())
+    Some(blocked_rate(
+        rows,
+        cols,
+        threads,
+        (64, 512),
+        |r0, rt, c0, ct, c| packed.multiply(&a[r0 * n..], rt, c0, ct, c),
+    ))
 }
 
 fn kernel_rate(
