@@ -228,10 +228,8 @@ impl TestSpec {
     ) -> Prepared {
         let values: Vec<f64> = raw.iter().copied().filter(|v| !v.is_nan()).collect();
         let n = values.len();
-        let prepared = if n < self.min_observed.max(3) {
-            Prepared::untested(Status::TooFewObserved, f64::NAN)
-        } else if values.iter().all(|&v| v == values[0]) {
-            Prepared::untested(Status::Constant, f64::NAN)
+        let prepared = if let Some(status) = self.observed_trait_screen(&values) {
+            Prepared::untested(status, f64::NAN)
         } else {
             let mut order = Vec::new();
             let mut ranks = vec![0.0; n];

@@ -22,6 +22,19 @@ use super::prepare::{PrepScratch, Prepared, Status, TestSpec};
 use super::t_pvalue;
 
 impl TestSpec {
+    /// Why a trait-design row's observed values cannot be tested (Pearson
+    /// and Spearman alike): fewer than `--min-observed` (at least 3), or
+    /// all equal.
+    pub(super) fn observed_trait_screen(&self, values: &[f64]) -> Option<Status> {
+        if values.len() < self.min_observed.max(3) {
+            Some(Status::TooFewObserved)
+        } else if values.iter().all(|&v| v == values[0]) {
+            Some(Status::Constant)
+        } else {
+            None
+        }
+    }
+
     /// A Pearson row with NaN: the correlation of the observed values.
     pub(super) fn prepare_masked_trait(
         &self,
@@ -34,10 +47,8 @@ impl TestSpec {
         values.clear();
         values.extend(raw.iter().copied().filter(|v| !v.is_nan()));
         let n = values.len();
-        let prepared = if n < self.min_observed.max(3) {
-            Prepared::untested(Status::TooFewObserved, f64::NAN)
-        } else if values.iter().all(|&v| v == values[0]) {
-            Prepared::untested(Status::Constant, f64::NAN)
+        let prepared = if let Some(status) = self.observed_trait_screen(&values) {
+            Prepared::untested(status, f64::NAN)
         } else {
             observed_z.resize(n, 0.0);
             let abs_sum = super::prepare::standardize(&values, &mut observed_z);
