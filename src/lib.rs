@@ -14,6 +14,7 @@ pub mod columns;
 pub mod demo;
 pub mod design;
 pub mod error;
+pub mod heap;
 pub mod input;
 pub mod inspect;
 pub mod job;

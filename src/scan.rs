@@ -546,6 +546,7 @@ fn scan_into_out_dir(
         return Ok(ScanOutcome::Shard(Box::new(record)));
     }
     let rank_file = spill_dir.join("rank.bin");
+    crate::heap::hand_back_free_heap();
     if step_down {
         let rank_started = Instant::now();
         if checkpoint.phase == Phase::Sorted {
@@ -608,6 +609,7 @@ fn scan_into_out_dir(
         None => None,
     };
 
+    crate::heap::hand_back_free_heap();
     let mut finalized = finalize(options, &spill_dir, &null_max, pooled.as_ref())?;
     finalized.tail = tail;
     let seconds = started.elapsed().as_secs_f64();

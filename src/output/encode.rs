@@ -19,11 +19,10 @@ use std::path::{Path, PathBuf};
 use std::sync::atomic::{AtomicUsize, Ordering};
 use std::sync::Mutex;
 
-use arrow_array::RecordBatch;
-use arrow_schema::SchemaRef;
+use arrow_array::{ArrayRef, RecordBatch};
+use arrow_schema::{Field, SchemaRef};
 use parquet::arrow::arrow_writer::{
-    compute_leaves, ArrowColumnChunk, ArrowColumnWriter, ArrowLeafColumn,
-    ArrowRowGroupWriterFactory,
+    compute_leaves, ArrowColumnChunk, ArrowColumnWriter, ArrowRowGroupWriterFactory,
 };
 use parquet::arrow::ArrowWriter;
 use parquet::errors::ParquetError;
@@ -72,19 +71,17 @@ impl RowGroupEncoder {
             .factory
             .create_column_writers(self.row_groups)
             .map_err(err)?;
-        let mut leaves = Vec::with_capacity(writers.len());
-        for (field, column) in self.schema.fields().iter().zip(batch.columns()) {
-            leaves.extend(compute_leaves(field.as_ref(), column).map_err(err)?);
-        }
-        if leaves.len() != writers.len() {
+        if self.schema.fields().len() != writers.len() {
             return Err(RiffleError::Internal(format!(
-                "{}: {} leaf columns for {} column writers",
+                "{}: {} columns for {} column writers",
                 self.temp.display(),
-                leaves.len(),
+                self.schema.fields().len(),
                 writers.len()
             )));
         }
-        let chunks = encode_columns(writers, &leaves, self.threads).map_err(err)?;
+        let fields: Vec<&Field> = self.schema.fields().iter().map(|f| f.as_ref()).collect();
+        let chunks =
+            encode_columns(writers, &fields, batch.columns(), self.threads).map_err(err)?;
         let mut row_group = self.file_writer.next_row_group().map_err(err)?;
         for chunk in chunks {
             chunk.append_to_row_group(&mut row_group).map_err(err)?;
@@ -116,10 +113,22 @@ fn parquet_error(path: &Path, e: ParquetError) -> RiffleError {
 /// floats, a few words). The chunks come back in column order.
 fn encode_columns(
     writers: Vec<ArrowColumnWriter>,
-    leaves: &[ArrowLeafColumn],
+    fields: &[&Field],
+    columns: &[ArrayRef],
     threads: usize,
 ) -> std::result::Result<Vec<ArrowColumnChunk>, ParquetError> {
-    let one = |mut writer: ArrowColumnWriter, leaf: &ArrowLeafColumn| {
+    // A column's levels (a u16 and a usize per row of a nullable column,
+    // ~0.6 MB per column of a 65,536-row group) are computed by the thread
+    // that encodes it and dropped with it, not for all columns up front.
+    let one = |mut writer: ArrowColumnWriter, i: usize| {
+        let leaves = compute_leaves(fields[i], &columns[i])?;
+        let [leaf] = leaves.as_slice() else {
+            return Err(ParquetError::General(format!(
+                "column {} has {} leaves; the results table has flat columns",
+                fields[i].name(),
+                leaves.len()
+            )));
+        };
         writer.write(leaf)?;
         writer.close()
     };
@@ -127,8 +136,8 @@ fn encode_columns(
     if threads <= 1 {
         return writers
             .into_iter()
-            .zip(leaves)
-            .map(|(w, l)| one(w, l))
+            .enumerate()
+            .map(|(i, w)| one(w, i))
             .collect();
     }
     let slots: Vec<Mutex<Option<ArrowColumnWriter>>> =
@@ -141,7 +150,7 @@ fn encode_columns(
         let Some(slot) = slots.get(i) else { break };
         let writer = slot.lock().ok().and_then(|mut s| s.take());
         let chunk = match writer {
-            Some(writer) => one(writer, &leaves[i]),
+            Some(writer) => one(writer, i),
             None => Err(ParquetError::General("column writer taken twice".into())),
         };
         if let Ok(mut d) = done[i].lock() {
