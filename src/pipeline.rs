@@ -211,9 +211,10 @@ pub fn run_with(
 }
 
 /// Buffers of each kind waiting to be reused: in steady state the reader
-/// and the workers take each one back as soon as it comes, so two suffice
-/// whatever the thread count.
-const POOLED: usize = 2;
+/// and the workers take each one back as soon as it comes, so one keeps
+/// them supplied whatever the thread count, and the memory held beyond the
+/// chunks in flight stays one chunk's worth.
+const POOLED: usize = 1;
 
 /// Rows per kernel call inside a chunk: a large chunk against thousands of
 /// relabelings takes seconds, and an interrupt must not wait for it.

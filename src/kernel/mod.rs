@@ -279,17 +279,21 @@ impl Kernel {
             });
         }
         let features = &mut out.features[base..];
-        // Tested rows packed together, in order, in a buffer kept across
-        // calls (taken out so that the other scratch buffers stay free to
-        // borrow beside it).
-        let mut standardized = std::mem::take(&mut s.packed);
-        standardized.clear();
+        // Tested rows packed together, in order: straight after those of
+        // `out` when kept, otherwise in a buffer kept across calls (either
+        // taken out so that the scratch buffers stay free to borrow).
+        let mut packed = if keep_rows {
+            std::mem::take(&mut out.standardized)
+        } else {
+            let mut packed = std::mem::take(&mut s.packed);
+            packed.clear();
+            packed
+        };
+        let from = packed.len();
         for &r in &s.tested {
-            standardized.extend_from_slice(&s.z64[r * n..(r + 1) * n]);
+            packed.extend_from_slice(&s.z64[r * n..(r + 1) * n]);
         }
-        if keep_rows {
-            out.standardized.extend_from_slice(&standardized);
-        }
+        let standardized = &packed[from..];
         if s.maxima.len() != b_total {
             s.maxima = vec![f64::NEG_INFINITY; b_total];
             s.floors = vec![f32::NEG_INFINITY; b_total];
@@ -302,7 +306,7 @@ impl Kernel {
                 .map(|&r| features[r].prepared.kernel_obs)
                 .collect();
             if let Some(h) = self.stop_after {
-                let (exceed, used) = self.count_sequential(&standardized, &obs, h, s);
+                let (exceed, used) = self.count_sequential(standardized, &obs, h, s);
                 for (k, &r) in s.tested.iter().enumerate() {
                     features[r].exceed = exceed[k];
                     features[r].relabelings = used[k];
@@ -311,7 +315,7 @@ impl Kernel {
                 // none are kept (maxT is not offered with sequential
                 // stopping).
             } else {
-                let rows_view = self.load_rows(&standardized, &obs, &mut s.rows);
+                let rows_view = self.load_rows(standardized, &obs, &mut s.rows);
                 let (floors, null_max) = (&mut s.floors, &mut s.maxima);
                 let mut exceed = vec![0u64; t];
                 let mut null_hist = if self.pooled_null {
@@ -354,7 +358,11 @@ impl Kernel {
                 }
             }
         }
-        s.packed = standardized;
+        if keep_rows {
+            out.standardized = packed;
+        } else {
+            s.packed = packed;
+        }
         // The worker's running maxima: merging by max gives those after
         // the last piece.
         if out.null_max.is_empty() {
