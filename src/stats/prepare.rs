@@ -92,8 +92,8 @@ pub(crate) struct TwoGroupCore {
     pub statistic: f64,
     pub p_param: f64,
     pub abs_sum: f64,
-    /// Group-B sums of `z` under the labels given.
-    pub sums: GroupSums,
+    /// The kernel statistic under the labels given.
+    pub kernel_obs: f64,
 }
 
 /// Default of `--min-observed`: observed values per group a feature with
@@ -407,16 +407,12 @@ impl TestSpec {
         scratch: &mut PrepScratch,
     ) -> Prepared {
         match self.two_group_core(raw, labels, self.sizes, z, scratch) {
-            // The observed kernel statistic from the group sums already
-            // taken: the same additions in the same order as
-            // `kernel_stat_with` under the observed labels (0 and 1 only),
-            // so the same bits, without another pass over the row.
             Ok(c) => Prepared {
                 status: Status::Tested,
                 effect: c.effect,
                 statistic: c.statistic,
                 p_param: c.p_param,
-                kernel_obs: self.finish(&[c.sums.s1], c.sums.q1),
+                kernel_obs: c.kernel_obs,
                 abs_sum: c.abs_sum,
                 observed: None,
             },
@@ -462,9 +458,14 @@ impl TestSpec {
         };
         let abs_sum = standardize(source, z);
         let sums = GroupSums::of(z, labels);
+        // The kernel statistic from these sums: the same additions in the
+        // same order as `kernel_stat_with` under these labels (0 and 1
+        // only), so the same bits, without another pass over the row.
+        let mut kernel_obs = self.side.orient(sums.s1);
         let (statistic, p_param) = match self.test {
             TestKind::Welch => {
                 let (t, df) = welch_t(sums, sizes);
+                kernel_obs = self.side.orient(t);
                 (t, t_pvalue(t, df, self.side))
             }
             TestKind::Student => {
@@ -493,7 +494,7 @@ impl TestSpec {
             statistic,
             p_param,
             abs_sum,
-            sums,
+            kernel_obs,
         })
     }
 
