@@ -23,9 +23,10 @@ pub struct FinishedChunk {
     pub outcome: ChunkOutcome,
 }
 
-/// Receives finished chunks in feature order.
+/// Receives finished chunks in feature order. The chunk is lent: its
+/// buffers go back to the reader and the workers for later chunks.
 pub trait ChunkSink {
-    fn accept(&mut self, chunk: FinishedChunk) -> Result<()>;
+    fn accept(&mut self, chunk: &FinishedChunk) -> Result<()>;
 }
 
 #[derive(Debug, Clone)]
@@ -81,6 +82,13 @@ pub fn run_with(
     let (done_tx, done_rx) = bounded::<Result<(u64, FinishedChunk, f64)>>(depth + threads);
     let failed = Arc::new(AtomicBool::new(false));
     let count = !options.prepare_only;
+    // Buffers of finished chunks handed back for later ones, so that a
+    // chunk does not fault in fresh pages for its values, ids (one string
+    // each) and outcomes. At most `POOLED` of each wait here; a full pool
+    // drops the buffer, so the memory held is bounded as before plus these.
+    let (values_back, values_pool) = bounded::<Vec<f64>>(POOLED);
+    let (ids_back, ids_pool) = bounded::<Vec<String>>(POOLED);
+    let (outcome_back, outcome_pool) = bounded::<ChunkOutcome>(POOLED);
 
     std::thread::scope(|scope| -> Result<PipelineStats> {
         let reader_failed = failed.clone();
@@ -92,7 +100,11 @@ pub fn run_with(
                 if stop.load(Ordering::Relaxed) || reader_failed.load(Ordering::Relaxed) {
                     break;
                 }
-                let mut block = FeatureBlock::default();
+                let mut block = FeatureBlock {
+                    values: values_pool.try_recv().unwrap_or_default(),
+                    ids: ids_pool.try_recv().unwrap_or_default(),
+                    ..FeatureBlock::default()
+                };
                 let t0 = Instant::now();
                 let got = source.next_block(chunk_rows, &mut block);
                 read_seconds += t0.elapsed().as_secs_f64();
@@ -117,6 +129,8 @@ pub fn run_with(
             let tx = done_tx.clone();
             let kernel = kernel.clone();
             let worker_failed = failed.clone();
+            let values_back = values_back.clone();
+            let outcome_pool = outcome_pool.clone();
             scope.spawn(move || {
                 let mut scratch = KernelScratch::default();
                 while let Ok((index, block)) = rx.recv() {
@@ -125,11 +139,14 @@ pub fn run_with(
                         continue;
                     }
                     let t0 = Instant::now();
-                    let Some(outcome) = run_in_pieces(&kernel, &block, count, &mut scratch, stop)
+                    let reuse = outcome_pool.try_recv().ok();
+                    let Some(outcome) =
+                        run_in_pieces(&kernel, &block, count, &mut scratch, stop, reuse)
                     else {
                         continue;
                     };
                     let seconds = t0.elapsed().as_secs_f64();
+                    let _ = values_back.try_send(block.values);
                     let chunk = FinishedChunk {
                         first_index: block.first_index,
                         ids: block.ids,
@@ -143,6 +160,8 @@ pub fn run_with(
         }
         drop(work_rx);
         drop(done_tx);
+        drop(values_back);
+        drop(outcome_pool);
 
         let mut stats = PipelineStats::default();
         let mut pending: BTreeMap<u64, FinishedChunk> = BTreeMap::new();
@@ -159,11 +178,13 @@ pub fn run_with(
                     while let Some(chunk) = pending.remove(&next) {
                         stats.features += chunk.ids.len() as u64;
                         stats.chunks += 1;
-                        if let Err(e) = sink.accept(chunk) {
+                        if let Err(e) = sink.accept(&chunk) {
                             outcome = Err(e);
                             failed.store(true, Ordering::Relaxed);
                             break;
                         }
+                        let _ = ids_back.try_send(chunk.ids);
+                        let _ = outcome_back.try_send(chunk.outcome);
                         next += 1;
                         progress(stats.features);
                     }
@@ -189,6 +210,12 @@ pub fn run_with(
     })
 }
 
+/// Buffers of each kind waiting to be reused: in steady state the reader
+/// and the workers take each one back as soon as it comes, so one keeps
+/// them supplied whatever the thread count, and the memory held beyond the
+/// chunks in flight stays one chunk's worth.
+const POOLED: usize = 1;
+
 /// Rows per kernel call inside a chunk: a large chunk against thousands of
 /// relabelings takes seconds, and an interrupt must not wait for it.
 const PIECE_ROWS: usize = 4096;
@@ -196,53 +223,44 @@ const PIECE_ROWS: usize = 4096;
 /// The kernel over a chunk in pieces, checking `stop` between them; `None`
 /// when stopped. Results do not depend on how rows are grouped (counts are
 /// exact per feature; maxima and histograms merge), so this equals one call.
+/// Every piece writes into one outcome whose vectors come from `reuse` (a
+/// finished chunk's, handed back by the writer).
+///
+/// Standardized rows are kept only without `count`: the step-down sorter
+/// reads them, and step-down runs only prepare here (its relabelings run in
+/// the rank pass); a counting run never reads them, and copying them was a
+/// large share of a small-B run's page faults.
 fn run_in_pieces(
     kernel: &Kernel,
     block: &FeatureBlock,
     count: bool,
     scratch: &mut KernelScratch,
     stop: &AtomicBool,
+    reuse: Option<ChunkOutcome>,
 ) -> Option<ChunkOutcome> {
     let rows = block.rows();
+    let keep_rows = !count;
+    let mut out = reuse.unwrap_or_default();
+    out.features.clear();
+    out.standardized.clear();
+    out.null_max.clear();
+    out.null_hist.clear();
     if !count || rows <= PIECE_ROWS {
-        return Some(kernel.run_chunk(&block.values, rows, count, scratch));
+        kernel.run_chunk_into(&block.values, rows, count, keep_rows, scratch, &mut out);
+        return Some(out);
     }
+    out.features.reserve(rows);
     let n = block.n_samples;
-    let mut merged: Option<ChunkOutcome> = None;
     for start in (0..rows).step_by(PIECE_ROWS) {
         if stop.load(Ordering::Relaxed) {
             return None;
         }
         let piece_rows = PIECE_ROWS.min(rows - start);
         let values = &block.values[start * n..(start + piece_rows) * n];
-        let piece = kernel.run_chunk(values, piece_rows, count, scratch);
-        merged = Some(match merged {
-            None => {
-                // Room for the whole chunk at once: growing by doubling
-                // copied every piece again (5% of a B = 100 run).
-                let mut all = piece;
-                let rest = rows - piece_rows;
-                all.features.reserve(rest);
-                all.standardized
-                    .reserve(all.standardized.len() / piece_rows.max(1) * rest);
-                all
-            }
-            Some(mut all) => {
-                all.features.extend(piece.features);
-                all.standardized.extend(piece.standardized);
-                for (m, v) in all.null_max.iter_mut().zip(&piece.null_max) {
-                    *m = m.max(*v);
-                }
-                if all.null_hist.is_empty() {
-                    all.null_hist = piece.null_hist;
-                } else {
-                    for (h, v) in all.null_hist.iter_mut().zip(&piece.null_hist) {
-                        *h += v;
-                    }
-                }
-                all
-            }
-        });
+        kernel.run_chunk_into(values, piece_rows, count, keep_rows, scratch, &mut out);
     }
-    merged
+    Some(out)
 }
+
+#[cfg(test)]
+mod tests;

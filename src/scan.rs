@@ -958,7 +958,7 @@ impl SpillSink {
 }
 
 impl ChunkSink for SpillSink {
-    fn accept(&mut self, chunk: FinishedChunk) -> Result<()> {
+    fn accept(&mut self, chunk: &FinishedChunk) -> Result<()> {
         for (m, v) in self.null_max.iter_mut().zip(&chunk.outcome.null_max) {
             *m = m.max(*v);
         }

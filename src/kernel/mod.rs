@@ -84,6 +84,7 @@ pub struct FeatureOutcome {
 
 /// What a chunk contributes beyond its features: the largest kernel
 /// statistic over its tested features, per relabelling (f64-exact).
+#[derive(Default)]
 pub struct ChunkOutcome {
     pub features: Vec<FeatureOutcome>,
     pub null_max: Vec<f64>,
@@ -98,6 +99,8 @@ pub struct ChunkOutcome {
 pub struct KernelScratch {
     prep: PrepScratch,
     z64: Vec<f64>,
+    /// The tested rows of `z64`, packed.
+    packed: Vec<f64>,
     tested: Vec<usize>,
     rows: RowBuffers,
     tiles: TileBuffers,
@@ -233,12 +236,32 @@ impl Kernel {
         count: bool,
         s: &mut KernelScratch,
     ) -> ChunkOutcome {
+        let mut out = ChunkOutcome::default();
+        self.run_chunk_into(raw, rows, count, true, s, &mut out);
+        out
+    }
+
+    /// [`Self::run_chunk`] on rows that follow those already in `out`: their
+    /// outcomes are appended, null maxima and histogram merged, and their
+    /// standardized rows appended only when `keep_rows` (only the step-down
+    /// sorter reads them). A chunk run in pieces thus fills one outcome
+    /// instead of one per piece that must then be copied into the whole.
+    pub fn run_chunk_into(
+        &self,
+        raw: &[f64],
+        rows: usize,
+        count: bool,
+        keep_rows: bool,
+        s: &mut KernelScratch,
+        out: &mut ChunkOutcome,
+    ) {
         let n = self.units();
         let width = self.spec.raw_width();
         let b_total = self.relabel.count;
         s.z64.resize(rows * n, 0.0);
         s.tested.clear();
-        let mut features = Vec::with_capacity(rows);
+        let base = out.features.len();
+        out.features.reserve(rows);
         for r in 0..rows {
             let prepared = self.spec.prepare(
                 &raw[r * width..(r + 1) * width],
@@ -249,89 +272,105 @@ impl Kernel {
             if prepared.status == Status::Tested {
                 s.tested.push(r);
             }
-            features.push(FeatureOutcome {
+            out.features.push(FeatureOutcome {
                 prepared,
                 exceed: 0,
                 relabelings: 0,
             });
         }
-        // Tested rows packed together, in order.
-        let mut standardized = Vec::with_capacity(s.tested.len() * n);
+        let features = &mut out.features[base..];
+        // Tested rows packed together, in order: straight after those of
+        // `out` when kept, otherwise in a buffer kept across calls (either
+        // taken out so that the scratch buffers stay free to borrow).
+        let mut packed = if keep_rows {
+            std::mem::take(&mut out.standardized)
+        } else {
+            let mut packed = std::mem::take(&mut s.packed);
+            packed.clear();
+            packed
+        };
+        let from = packed.len();
         for &r in &s.tested {
-            standardized.extend_from_slice(&s.z64[r * n..(r + 1) * n]);
+            packed.extend_from_slice(&s.z64[r * n..(r + 1) * n]);
         }
+        let standardized = &packed[from..];
         if s.maxima.len() != b_total {
             s.maxima = vec![f64::NEG_INFINITY; b_total];
             s.floors = vec![f32::NEG_INFINITY; b_total];
         }
         let t = s.tested.len();
-        if t == 0 || b_total == 0 || !count {
-            return ChunkOutcome {
-                features,
-                null_max: s.maxima.clone(),
-                standardized,
-                null_hist: Vec::new(),
-            };
-        }
-        let obs: Vec<f64> = s
-            .tested
-            .iter()
-            .map(|&r| features[r].prepared.kernel_obs)
-            .collect();
-        if let Some(h) = self.stop_after {
-            let (exceed, used) = self.count_sequential(&standardized, &obs, h, s);
-            for (k, &r) in s.tested.iter().enumerate() {
-                features[r].exceed = exceed[k];
-                features[r].relabelings = used[k];
-            }
-            // Per-relabelling maxima would miss the stopped features: none
-            // are kept (maxT is not offered with sequential stopping).
-            return ChunkOutcome {
-                features,
-                null_max: s.maxima.clone(),
-                standardized,
-                null_hist: Vec::new(),
-            };
-        }
-        let rows_view = self.load_rows(&standardized, &obs, &mut s.rows);
-        let (floors, null_max) = (&mut s.floors, &mut s.maxima);
-        let mut exceed = vec![0u64; t];
-        let mut null_hist = if self.pooled_null {
-            vec![0u64; NullHistogram::BINS]
-        } else {
-            Vec::new()
-        };
-        self.for_each_counted_row(
-            &rows_view,
-            &obs,
-            0,
-            b_total,
-            &mut s.tiles,
-            floors,
-            |k, col0, tile, row, flags, floors| {
-                let z = &standardized[k * n..(k + 1) * n];
-                exceed[k] += self.count_row(
-                    tile,
-                    row,
-                    flags,
-                    z,
-                    col0,
+        if t > 0 && b_total > 0 && count {
+            let obs: Vec<f64> = s
+                .tested
+                .iter()
+                .map(|&r| features[r].prepared.kernel_obs)
+                .collect();
+            if let Some(h) = self.stop_after {
+                let (exceed, used) = self.count_sequential(standardized, &obs, h, s);
+                for (k, &r) in s.tested.iter().enumerate() {
+                    features[r].exceed = exceed[k];
+                    features[r].relabelings = used[k];
+                }
+                // Per-relabelling maxima would miss the stopped features:
+                // none are kept (maxT is not offered with sequential
+                // stopping).
+            } else {
+                let rows_view = self.load_rows(standardized, &obs, &mut s.rows);
+                let (floors, null_max) = (&mut s.floors, &mut s.maxima);
+                let mut exceed = vec![0u64; t];
+                let mut null_hist = if self.pooled_null {
+                    vec![0u64; NullHistogram::BINS]
+                } else {
+                    Vec::new()
+                };
+                self.for_each_counted_row(
+                    &rows_view,
+                    &obs,
+                    0,
+                    b_total,
+                    &mut s.tiles,
                     floors,
-                    &mut null_max[col0..col0 + tile.len()],
-                    None,
-                    &mut null_hist,
+                    |k, col0, tile, row, flags, floors| {
+                        let z = &standardized[k * n..(k + 1) * n];
+                        exceed[k] += self.count_row(
+                            tile,
+                            row,
+                            flags,
+                            z,
+                            col0,
+                            floors,
+                            &mut null_max[col0..col0 + tile.len()],
+                            None,
+                            &mut null_hist,
+                        );
+                    },
                 );
-            },
-        );
-        for (k, &r) in s.tested.iter().enumerate() {
-            features[r].exceed = exceed[k];
-            features[r].relabelings = b_total as u64;
+                for (k, &r) in s.tested.iter().enumerate() {
+                    features[r].exceed = exceed[k];
+                    features[r].relabelings = b_total as u64;
+                }
+                if out.null_hist.is_empty() {
+                    out.null_hist = null_hist;
+                } else {
+                    for (h, v) in out.null_hist.iter_mut().zip(&null_hist) {
+                        *h += v;
+                    }
+                }
+            }
         }
-        ChunkOutcome {
-            features,
-            null_max: s.maxima.clone(),
-            standardized,
-            null_hist,
+        if keep_rows {
+            out.standardized = packed;
+        } else {
+            s.packed = packed;
+        }
+        // The worker's running maxima: merging by max gives those after
+        // the last piece.
+        if out.null_max.is_empty() {
+            out.null_max.extend_from_slice(&s.maxima);
+        } else {
+            for (m, v) in out.null_max.iter_mut().zip(&s.maxima) {
+                *m = m.max(*v);
+            }
         }
     }
 
