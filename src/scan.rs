@@ -546,6 +546,7 @@ fn scan_into_out_dir(
         return Ok(ScanOutcome::Shard(Box::new(record)));
     }
     let rank_file = spill_dir.join("rank.bin");
+    let mut runs_removal = BackgroundRemoval::default();
     if step_down {
         let rank_started = Instant::now();
         if checkpoint.phase == Phase::Sorted {
@@ -566,7 +567,7 @@ fn scan_into_out_dir(
             checkpoint.set_null_max(&null_max);
             checkpoint.set_histogram(histogram.as_ref());
             checkpoint.save(&options.out)?;
-            let _ = std::fs::remove_dir_all(&runs_dir);
+            runs_removal.start(runs_dir.clone());
         }
         // An interrupted rewrite is redone (it is idempotent); a finished
         // one removed the rank file last.
@@ -652,6 +653,42 @@ fn scan_into_out_dir(
         }
     }
     Ok(ScanOutcome::Finished(summary))
+}
+
+/// Deletes a directory on its own thread. The sorted runs of step-down
+/// (some 400 bytes per feature) took the final pass's main thread a few
+/// hundredths of a second to unlink while the other cores sat idle. Dropping
+/// the guard waits for the deletion, so that neither a finished run nor the
+/// clean-up after an error returns with the deletion still under way.
+#[derive(Default)]
+struct BackgroundRemoval(Option<std::thread::JoinHandle<()>>);
+
+impl BackgroundRemoval {
+    /// Waits for an earlier deletion first, if any.
+    fn start(&mut self, dir: PathBuf) {
+        drop(std::mem::take(self));
+        let spawned = std::thread::Builder::new().name("riffle-rm".into()).spawn({
+            let dir = dir.clone();
+            move || {
+                let _ = std::fs::remove_dir_all(dir);
+            }
+        });
+        match spawned {
+            Ok(handle) => self.0 = Some(handle),
+            // No thread to be had: delete here, as before.
+            Err(_) => {
+                let _ = std::fs::remove_dir_all(dir);
+            }
+        }
+    }
+}
+
+impl Drop for BackgroundRemoval {
+    fn drop(&mut self) {
+        if let Some(handle) = self.0.take() {
+            let _ = handle.join();
+        }
+    }
 }
 
 /// A shard's end: in step-down mode the rank pass over the shard's own
