@@ -1281,8 +1281,7 @@ pub(crate) fn finalize(
         .map(|_| crate::maxt::SingleStep::new(null_max));
     let mut relabelings_used = 0u64;
     let mut stopped_early = 0u64;
-    let mut reader = SpillReader::open_unchecked(spill_dir)?;
-    let mut id = String::new();
+    let mut rows = crate::spill_ahead::SpillRows::open(spill_dir, options.threads > 1)?;
     let mut param_row = vec![f64::NAN; METHODS.len()];
     let mut pooled_row = [f64::NAN; 2];
     let mut fwer_hits_05 = 0u64;
@@ -1293,10 +1292,9 @@ pub(crate) fn finalize(
         },
         &adjust_options,
         &mut |_, adjusted| {
-            let record = reader
-                .next_record()?
+            let (record, id) = rows
+                .next()?
                 .ok_or_else(|| RiffleError::Internal("spill ended early".into()))?;
-            reader.next_id(&mut id)?;
             if let Some(cols) = param_columns.as_mut() {
                 cols.next_row(&mut param_row)?;
             }
@@ -1319,7 +1317,7 @@ pub(crate) fn finalize(
             }
             // A row's cells on the stack: one allocation per feature showed
             // in the profile of the final pass at B = 100.
-            let mut cells = [Cell::Text(&id); MAX_RESULT_COLUMNS];
+            let mut cells = [Cell::Text(id); MAX_RESULT_COLUMNS];
             let mut n = 1;
             for cell in [
                 Cell::Count(record.n_a as u64),

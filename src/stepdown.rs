@@ -750,11 +750,18 @@ mod sorter_tests {
             expected[j as usize] = Some((j % 11, p));
         }
         let mut got = Vec::new();
-        reverse_and_scatter(&rank_file, dir.path(), b_total, n_features, 0, &mut |i, r| {
-            assert_eq!(i, got.len() as u64);
-            got.push(r.map(|r| (r.exceed, r.p_maxt)));
-            Ok(())
-        })
+        reverse_and_scatter(
+            &rank_file,
+            dir.path(),
+            b_total,
+            n_features,
+            0,
+            &mut |i, r| {
+                assert_eq!(i, got.len() as u64);
+                got.push(r.map(|r| (r.exceed, r.p_maxt)));
+                Ok(())
+            },
+        )
         .unwrap();
         assert_eq!(got, expected);
         // The bucket files are gone.
