@@ -1293,7 +1293,7 @@ pub(crate) fn finalize(
         &adjust_options,
         &mut |_, adjusted| {
             let (record, id) = rows
-                .next()?
+                .next_row()?
                 .ok_or_else(|| RiffleError::Internal("spill ended early".into()))?;
             if let Some(cols) = param_columns.as_mut() {
                 cols.next_row(&mut param_row)?;

@@ -77,7 +77,7 @@ impl SpillRows {
     }
 
     /// The next record and its id; None after the last.
-    pub fn next(&mut self) -> Result<Option<(Record, &str)>> {
+    pub fn next_row(&mut self) -> Result<Option<(Record, &str)>> {
         match self {
             SpillRows::Here { reader, id } => match reader.next_record()? {
                 Some(record) => {
@@ -86,13 +86,13 @@ impl SpillRows {
                 }
                 None => Ok(None),
             },
-            SpillRows::Ahead(ahead) => ahead.next(),
+            SpillRows::Ahead(ahead) => ahead.next_row(),
         }
     }
 }
 
 impl Ahead {
-    fn next(&mut self) -> Result<Option<(Record, &str)>> {
+    fn next_row(&mut self) -> Result<Option<(Record, &str)>> {
         while self.next == self.current.records.len() {
             let Some(blocks) = &self.blocks else {
                 return Ok(None);
@@ -221,11 +221,11 @@ mod tests {
         for ahead in [false, true] {
             let mut rows = SpillRows::open(dir.path(), ahead).unwrap();
             for i in 0..n {
-                let (rec, id) = rows.next().unwrap().unwrap();
+                let (rec, id) = rows.next_row().unwrap().unwrap();
                 assert_eq!((rec.exceed, id), (i, id_of(i).as_str()), "ahead {ahead}");
             }
-            assert!(rows.next().unwrap().is_none());
-            assert!(rows.next().unwrap().is_none());
+            assert!(rows.next_row().unwrap().is_none());
+            assert!(rows.next_row().unwrap().is_none());
         }
     }
 
@@ -240,7 +240,7 @@ mod tests {
         }
         w.finish().unwrap();
         let mut rows = SpillRows::open(dir.path(), true).unwrap();
-        assert_eq!(rows.next().unwrap().unwrap().0.exceed, 0);
+        assert_eq!(rows.next_row().unwrap().unwrap().0.exceed, 0);
         drop(rows);
     }
 }
