@@ -33,6 +33,7 @@ pub mod scan;
 pub mod shard;
 pub mod simulate;
 pub mod spill;
+pub mod spill_ahead;
 pub mod stats;
 pub mod stepdown;
 pub mod tail;

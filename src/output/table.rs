@@ -205,9 +205,26 @@ struct ParquetTable {
     path: PathBuf,
     temp: PathBuf,
     schema: Arc<Schema>,
+    kinds: Vec<ColumnKind>,
     builders: Vec<ColumnBuilder>,
     rows: usize,
     encoder: RowGroupEncoder,
+}
+
+/// A builder with room for a whole batch: grown by doubling instead, each
+/// batch's columns were reallocated and copied some 16 times, a tenth of
+/// the row assembly in the final pass. Untouched capacity is not resident.
+fn new_builder(kind: ColumnKind) -> ColumnBuilder {
+    match kind {
+        ColumnKind::Text => ColumnBuilder::Text(StringBuilder::with_capacity(
+            PARQUET_BATCH_ROWS,
+            PARQUET_BATCH_ROWS * 16,
+        )),
+        ColumnKind::Float => {
+            ColumnBuilder::Float(Float64Builder::with_capacity(PARQUET_BATCH_ROWS))
+        }
+        ColumnKind::Count => ColumnBuilder::Count(UInt64Builder::with_capacity(PARQUET_BATCH_ROWS)),
+    }
 }
 
 impl ParquetTable {
@@ -237,17 +254,11 @@ impl ParquetTable {
             results_properties(columns),
             threads,
         )?;
-        let builders = columns
-            .iter()
-            .map(|(_, kind)| match kind {
-                ColumnKind::Text => ColumnBuilder::Text(StringBuilder::new()),
-                ColumnKind::Float => ColumnBuilder::Float(Float64Builder::new()),
-                ColumnKind::Count => ColumnBuilder::Count(UInt64Builder::new()),
-            })
-            .collect();
+        let builders = columns.iter().map(|(_, kind)| new_builder(*kind)).collect();
         Ok(ParquetTable {
             path: path.to_path_buf(),
             temp,
+            kinds: columns.iter().map(|(_, kind)| *kind).collect(),
             schema,
             builders,
             rows: 0,
@@ -301,7 +312,16 @@ impl ParquetTable {
             return Ok(());
         }
         let batch = self.take_batch()?;
-        self.encoder.write(&batch)
+        self.encoder.write(&batch)?;
+        drop(batch);
+        // `finish` left the builders without capacity. Sized again only now
+        // that the batch is freed, so that they reuse its memory: sized
+        // while it was alive, they took fresh pages and peak RSS grew by
+        // a batch (~11 MB at 2,000,000 features).
+        for (b, &kind) in self.builders.iter_mut().zip(&self.kinds) {
+            *b = new_builder(kind);
+        }
+        Ok(())
     }
 }
 
