@@ -118,7 +118,9 @@ fn counts_equal_brute_force_across_partial_tiles() {
 /// kernel statistics, the same map for every feature of a test (standardized
 /// rows: fixed total sum of squares), so counts and running maxima compare.
 /// The same pass on the general GEMM (`matrixmultiply`) must give the same
-/// counts and the same f64 maxima bit for bit.
+/// counts and the same f64 maxima bit for bit, and so must the pass fed in
+/// pieces of 30 rows (as the rank pass feeds it; the running maxima and
+/// their sorted copy carry over from piece to piece).
 #[test]
 fn rank_pass_over_a_range_inside_a_panel_equals_brute_force() {
     use riffle::kernel::RankState;
@@ -152,7 +154,7 @@ fn rank_pass_over_a_range_inside_a_panel_equals_brute_force() {
                 Side::Less => -t,
             };
             let mut results = Vec::new();
-            for general in [false, true] {
+            for (general, piece) in [(false, features), (true, features), (false, 30)] {
                 let mut kernel = Kernel::new(spec.clone(), labels.clone(), relabel.clone());
                 if general {
                     kernel = kernel.with_general_multiply();
@@ -170,14 +172,17 @@ fn rank_pass_over_a_range_inside_a_panel_equals_brute_force() {
                 let obs: Vec<f64> = order.iter().map(|&k| obs_of(k)).collect();
                 let mut rank = RankState::new(col0, cols, false);
                 let (mut exceed, mut reached) = (vec![0u64; features], vec![0u64; features]);
-                kernel.rank_rows(
-                    &standardized,
-                    &obs,
-                    &mut rank,
-                    &mut exceed,
-                    &mut reached,
-                    &mut scratch,
-                );
+                for start in (0..features).step_by(piece) {
+                    let end = (start + piece).min(features);
+                    kernel.rank_rows(
+                        &standardized[start * n..end * n],
+                        &obs[start..end],
+                        &mut rank,
+                        &mut exceed[start..end],
+                        &mut reached[start..end],
+                        &mut scratch,
+                    );
+                }
                 results.push((order, exceed, reached, rank.maxima.clone()));
             }
             let (order, exceed, reached, maxima) = &results[0];
@@ -185,6 +190,9 @@ fn rank_pass_over_a_range_inside_a_panel_equals_brute_force() {
             assert_eq!(&results[1].2, reached, "{test:?} {side:?}: general GEMM");
             let bits = |m: &[f64]| m.iter().map(|v| v.to_bits()).collect::<Vec<_>>();
             assert_eq!(bits(&results[1].3), bits(maxima), "{test:?} {side:?}");
+            assert_eq!(&results[2].1, exceed, "{test:?} {side:?}: in pieces");
+            assert_eq!(&results[2].2, reached, "{test:?} {side:?}: in pieces");
+            assert_eq!(bits(&results[2].3), bits(maxima), "{test:?} {side:?}");
             // Brute force in f64, rows in the same order.
             let mut running = vec![f64::NEG_INFINITY; cols];
             for (pos, &k) in order.iter().enumerate() {
