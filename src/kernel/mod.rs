@@ -382,6 +382,7 @@ impl Kernel {
                         &mut hits,
                         SortedMaxima {
                             sorted: &mut state.sorted[range.clone()],
+                            below: &mut state.below[(col0 - base) / COL_TILE],
                         },
                     )),
                     &mut state.histogram,
@@ -789,7 +790,7 @@ impl Kernel {
         // above a running maximum.
         let mut count = u64::from(flags.clear);
         if flags.near == 0 && flags.over == 0 {
-            if let Some((hits, sorted)) = reached {
+            if let Some((hits, mut sorted)) = reached {
                 *hits += sorted.count_at_least(row.threshold);
             }
             return count;
@@ -832,7 +833,7 @@ impl Kernel {
                 }
             }
         }
-        if let Some((hits, sorted)) = reached {
+        if let Some((hits, mut sorted)) = reached {
             *hits += sorted.count_at_least(row.threshold);
         }
         count
@@ -869,6 +870,8 @@ pub struct RankState {
     pub maxima: Vec<f64>,
     /// `maxima` sorted ascending within each tile's columns (`reached.rs`).
     sorted: Vec<f64>,
+    /// Per column tile, the position of the last row's threshold in `sorted`.
+    below: Vec<u32>,
     floors: Vec<f32>,
     /// Pooled null histogram over this range (empty unless asked for).
     pub histogram: Vec<u64>,
@@ -894,6 +897,7 @@ impl RankState {
             before: Vec::new(),
             maxima: vec![f64::NEG_INFINITY; cols],
             sorted: vec![f64::NEG_INFINITY; cols],
+            below: vec![0; cols.div_ceil(COL_TILE)],
             floors: vec![f32::NEG_INFINITY; cols],
             histogram: if pooled_null {
                 vec![0; NullHistogram::BINS]
