@@ -212,3 +212,58 @@ fn rank_pass_over_a_range_inside_a_panel_equals_brute_force() {
         }
     }
 }
+
+/// The f64 statistic behind every recheck (`kernel_stat_with`) sums class
+/// 1's values (and squares, for Welch) without a branch; those sums must
+/// equal, bit for bit, the plain sums written here (in index order, class
+/// 1 only), finished the same way, for Student, Welch and mean difference,
+/// every side, observed and relabelled classes, rows with exact zeros and
+/// with values that cancel to zero part way (where a -0 would show).
+#[test]
+fn two_group_recheck_sums_equal_plain_sums_bit_for_bit() {
+    use riffle::stats::prepare::Assignment;
+    let (n_a, n_b) = (7, 6);
+    let n = n_a + n_b;
+    let labels: Vec<u8> = (0..n).map(|i| u8::from(i >= n_a)).collect();
+    let relabel = Relabelings::draw(&labels, 200, 4);
+    let mut state = 17u64;
+    let mut rows: Vec<Vec<f64>> = (0..20)
+        .map(|_| (0..n).map(|_| splitmix(&mut state) - 0.5).collect())
+        .collect();
+    rows.push(vec![0.0; n]);
+    // -0.25 + 0.25 = +0 after two class-1 values, then a -0 to add.
+    let mut cancel = vec![1.0; n];
+    cancel[n_a] = -0.25;
+    cancel[n_a + 1] = 0.25;
+    cancel[n_a + 2] = -0.0;
+    rows.push(cancel);
+    for test in [TestKind::Student, TestKind::Welch, TestKind::MeanDiff] {
+        for side in [Side::Both, Side::Greater, Side::Less] {
+            let spec = TestSpec::two_group(test, side, Sizes { n_a, n_b });
+            for z in &rows {
+                let mut check = |classes: &[u8], got: f64| {
+                    let (mut s1, mut q1) = (0.0f64, 0.0f64);
+                    for (&v, &c) in z.iter().zip(classes) {
+                        if c == 1 {
+                            s1 += v;
+                            q1 += v * v;
+                        }
+                    }
+                    let want = spec.finish(&[s1], q1);
+                    assert_eq!(got.to_bits(), want.to_bits(), "{test:?} {side:?} {z:?}");
+                };
+                check(
+                    &labels,
+                    spec.kernel_stat_with(z, Assignment::Observed(&labels)),
+                );
+                for b in 0..relabel.count {
+                    let classes = relabel.row(b);
+                    check(
+                        classes,
+                        spec.kernel_stat_with(z, Assignment::Classes(classes)),
+                    );
+                }
+            }
+        }
+    }
+}
