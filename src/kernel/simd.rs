@@ -79,7 +79,7 @@ multiversion! {
 }
 
 /// Constants of the Welch finisher, from the group sizes.
-#[derive(Clone, Copy)]
+#[derive(Clone, Copy, Default)]
 pub(super) struct WelchConstants {
     pub total_sq: f32,
     pub inv_na: f32,
