@@ -241,7 +241,7 @@ fn two_group_recheck_sums_equal_plain_sums_bit_for_bit() {
         for side in [Side::Both, Side::Greater, Side::Less] {
             let spec = TestSpec::two_group(test, side, Sizes { n_a, n_b });
             for z in &rows {
-                let mut check = |classes: &[u8], got: f64| {
+                let check = |classes: &[u8], got: f64| {
                     let (mut s1, mut q1) = (0.0f64, 0.0f64);
                     for (&v, &c) in z.iter().zip(classes) {
                         if c == 1 {
