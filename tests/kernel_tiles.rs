@@ -118,7 +118,9 @@ fn counts_equal_brute_force_across_partial_tiles() {
 /// kernel statistics, the same map for every feature of a test (standardized
 /// rows: fixed total sum of squares), so counts and running maxima compare.
 /// The same pass on the general GEMM (`matrixmultiply`) must give the same
-/// counts and the same f64 maxima bit for bit.
+/// counts and the same f64 maxima bit for bit, and so must the pass fed in
+/// pieces of 30 rows (as the rank pass feeds it; the running maxima and
+/// their sorted copy carry over from piece to piece).
 #[test]
 fn rank_pass_over_a_range_inside_a_panel_equals_brute_force() {
     use riffle::kernel::RankState;
@@ -152,7 +154,7 @@ fn rank_pass_over_a_range_inside_a_panel_equals_brute_force() {
                 Side::Less => -t,
             };
             let mut results = Vec::new();
-            for general in [false, true] {
+            for (general, piece) in [(false, features), (true, features), (false, 30)] {
                 let mut kernel = Kernel::new(spec.clone(), labels.clone(), relabel.clone());
                 if general {
                     kernel = kernel.with_general_multiply();
@@ -170,14 +172,17 @@ fn rank_pass_over_a_range_inside_a_panel_equals_brute_force() {
                 let obs: Vec<f64> = order.iter().map(|&k| obs_of(k)).collect();
                 let mut rank = RankState::new(col0, cols, false);
                 let (mut exceed, mut reached) = (vec![0u64; features], vec![0u64; features]);
-                kernel.rank_rows(
-                    &standardized,
-                    &obs,
-                    &mut rank,
-                    &mut exceed,
-                    &mut reached,
-                    &mut scratch,
-                );
+                for start in (0..features).step_by(piece) {
+                    let end = (start + piece).min(features);
+                    kernel.rank_rows(
+                        &standardized[start * n..end * n],
+                        &obs[start..end],
+                        &mut rank,
+                        &mut exceed[start..end],
+                        &mut reached[start..end],
+                        &mut scratch,
+                    );
+                }
                 results.push((order, exceed, reached, rank.maxima.clone()));
             }
             let (order, exceed, reached, maxima) = &results[0];
@@ -185,6 +190,9 @@ fn rank_pass_over_a_range_inside_a_panel_equals_brute_force() {
             assert_eq!(&results[1].2, reached, "{test:?} {side:?}: general GEMM");
             let bits = |m: &[f64]| m.iter().map(|v| v.to_bits()).collect::<Vec<_>>();
             assert_eq!(bits(&results[1].3), bits(maxima), "{test:?} {side:?}");
+            assert_eq!(&results[2].1, exceed, "{test:?} {side:?}: in pieces");
+            assert_eq!(&results[2].2, reached, "{test:?} {side:?}: in pieces");
+            assert_eq!(bits(&results[2].3), bits(maxima), "{test:?} {side:?}");
             // Brute force in f64, rows in the same order.
             let mut running = vec![f64::NEG_INFINITY; cols];
             for (pos, &k) in order.iter().enumerate() {
@@ -200,6 +208,61 @@ fn rank_pass_over_a_range_inside_a_panel_equals_brute_force() {
                 let want_reached = running.iter().filter(|&&m| m >= reach).count() as u64;
                 assert_eq!(exceed[pos], want_exceed, "{test:?} {side:?} row {pos}");
                 assert_eq!(reached[pos], want_reached, "{test:?} {side:?} row {pos}");
+            }
+        }
+    }
+}
+
+/// The f64 statistic behind every recheck (`kernel_stat_with`) sums class
+/// 1's values (and squares, for Welch) without a branch; those sums must
+/// equal, bit for bit, the plain sums written here (in index order, class
+/// 1 only), finished the same way, for Student, Welch and mean difference,
+/// every side, observed and relabelled classes, rows with exact zeros and
+/// with values that cancel to zero part way (where a -0 would show).
+#[test]
+fn two_group_recheck_sums_equal_plain_sums_bit_for_bit() {
+    use riffle::stats::prepare::Assignment;
+    let (n_a, n_b) = (7, 6);
+    let n = n_a + n_b;
+    let labels: Vec<u8> = (0..n).map(|i| u8::from(i >= n_a)).collect();
+    let relabel = Relabelings::draw(&labels, 200, 4);
+    let mut state = 17u64;
+    let mut rows: Vec<Vec<f64>> = (0..20)
+        .map(|_| (0..n).map(|_| splitmix(&mut state) - 0.5).collect())
+        .collect();
+    rows.push(vec![0.0; n]);
+    // -0.25 + 0.25 = +0 after two class-1 values, then a -0 to add.
+    let mut cancel = vec![1.0; n];
+    cancel[n_a] = -0.25;
+    cancel[n_a + 1] = 0.25;
+    cancel[n_a + 2] = -0.0;
+    rows.push(cancel);
+    for test in [TestKind::Student, TestKind::Welch, TestKind::MeanDiff] {
+        for side in [Side::Both, Side::Greater, Side::Less] {
+            let spec = TestSpec::two_group(test, side, Sizes { n_a, n_b });
+            for z in &rows {
+                let check = |classes: &[u8], got: f64| {
+                    let (mut s1, mut q1) = (0.0f64, 0.0f64);
+                    for (&v, &c) in z.iter().zip(classes) {
+                        if c == 1 {
+                            s1 += v;
+                            q1 += v * v;
+                        }
+                    }
+                    let want = spec.finish(&[s1], q1);
+                    assert_eq!(got.to_bits(), want.to_bits(), "{test:?} {side:?} {z:?}");
+                };
+                check(
+                    &labels,
+                    spec.kernel_stat_with(z, Assignment::Observed(&labels)),
+                );
+                for b in 0..relabel.count {
+                    let classes = relabel.row(b);
+                    check(
+                        classes,
+                        spec.kernel_stat_with(z, Assignment::Classes(classes)),
+                    );
+                }
             }
         }
     }

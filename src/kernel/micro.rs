@@ -42,7 +42,10 @@ impl Isa {
     pub(super) fn detect() -> Option<Isa> {
         #[cfg(target_arch = "x86_64")]
         {
-            if std::arch::is_x86_feature_detected!("avx512f") {
+            // POPCNT for the fused pass's counts (every AVX-512 CPU has it).
+            if std::arch::is_x86_feature_detected!("avx512f")
+                && std::arch::is_x86_feature_detected!("popcnt")
+            {
                 return Some(Isa::Avx512);
             }
             if std::arch::is_x86_feature_detected!("avx2")
@@ -473,7 +476,7 @@ mod avx512 {
         pub flags: &'a mut [super::RowFlags],
     }
 
-    #[target_feature(enable = "avx512f")]
+    #[target_feature(enable = "avx512f,popcnt")]
     pub(super) unsafe fn run_counted(job: &Job, mut count: Count<'_>) {
         let panels = job.panels();
         let mut p = panels.start;
@@ -518,9 +521,7 @@ mod avx512 {
     /// `block`, then per value: orient, count clear exceedances, flag values
     /// near the observed statistic or over the floor, as `scan_row` does
     /// (the same IEEE comparisons and add, so the same decisions).
-    // Welch reads two rows of `acc` per statistic, so the rows are indexed.
-    #[allow(clippy::needless_range_loop)]
-    #[target_feature(enable = "avx512f")]
+    #[target_feature(enable = "avx512f,popcnt")]
     #[inline]
     unsafe fn counted<const R: usize, const V: usize>(
         job: &Job,
@@ -528,8 +529,29 @@ mod avx512 {
         p: usize,
         count: &mut Count<'_>,
     ) {
-        use crate::stats::Side;
         let acc = accumulate::<R, V>(job, i, p);
+        // The row step a constant, so that the pass below unrolls (with it
+        // a run-time value, the pass was a loop over spilled accumulators
+        // and a third of this function's time).
+        match count.welch {
+            Some(c) => pass::<R, V, 2>(job, i, p, count, &acc, c),
+            None => pass::<R, V, 1>(job, i, p, count, &acc, WelchConstants::default()),
+        }
+    }
+
+    // Welch reads two rows of `acc` per statistic, so the rows are indexed.
+    #[allow(clippy::needless_range_loop)]
+    #[target_feature(enable = "avx512f,popcnt")]
+    #[inline]
+    unsafe fn pass<const R: usize, const V: usize, const STEP: usize>(
+        job: &Job,
+        i: usize,
+        p: usize,
+        count: &mut Count<'_>,
+        acc: &[[__m512; V]; R],
+        welch_constants: WelchConstants,
+    ) {
+        use crate::stats::Side;
         let first = job.col0 / PANEL;
         // |x| and -x as integer masks, branch-free and with the same bits
         // as `orient_all` (the float forms would need AVX-512DQ).
@@ -539,6 +561,15 @@ mod avx512 {
             Side::Less => (-1, i32::MIN),
         };
         let (keep, flip) = (_mm512_set1_epi32(keep), _mm512_set1_epi32(flip));
+        // Plain rows: one statistic per row. Welch: rows in pairs, the
+        // statistic of pair j written over its first row.
+        let feature0 = i / STEP;
+        // Flags of the block's rows gathered here and added to the rows'
+        // flags once (updating them in memory per panel chained every
+        // update on the previous store).
+        let mut clear = [0u32; R];
+        let mut near = [0u64; R];
+        let mut over = [0u64; R];
         for v in 0..V {
             let lanes = job.lanes(p + v);
             // Lane l of panel p + v is output column start + l - col0; the
@@ -556,35 +587,27 @@ mod avx512 {
                     count.floors.as_ptr().wrapping_offset(shift),
                 )
             };
-            let bit = 1u64 << (p + v - first);
-            // Plain rows: one statistic per row. Welch: rows in pairs, the
-            // statistic of pair j written over its first row.
-            let (step, feature0) = if count.welch.is_some() {
-                (2, i / 2)
-            } else {
-                (1, i)
-            };
-            for r in (0..R).step_by(step) {
-                let value = match count.welch {
-                    Some(c) => welch(acc[r][v], acc[r + 1][v], c),
-                    None => acc[r][v],
+            let at = p + v - first;
+            for r in (0..R).step_by(STEP) {
+                let value = if STEP == 2 {
+                    welch(acc[r][v], acc[r + 1][v], welch_constants)
+                } else {
+                    acc[r][v]
                 };
                 let bits = _mm512_and_si512(_mm512_castps_si512(value), keep);
                 let x = _mm512_castsi512_ps(_mm512_xor_si512(bits, flip));
-                let f = feature0 + r / step;
-                let b = *count.bounds.get_unchecked(f);
+                let b = *count.bounds.get_unchecked(feature0 + r / STEP);
                 let above =
                     _mm512_mask_cmp_ps_mask::<_CMP_GT_OQ>(lanes, x, _mm512_set1_ps(b.above));
                 let below = _mm512_cmp_ps_mask::<_CMP_LT_OQ>(x, _mm512_set1_ps(b.below));
-                let over = _mm512_mask_cmp_ps_mask::<_CMP_GT_OQ>(
+                let over_floor = _mm512_mask_cmp_ps_mask::<_CMP_GT_OQ>(
                     lanes,
                     _mm512_add_ps(x, _mm512_set1_ps(b.slack)),
                     floor,
                 );
-                let flags = count.flags.get_unchecked_mut(f);
-                flags.clear += above.count_ones();
-                flags.near |= u64::from(!(above | below) & lanes != 0) * bit;
-                flags.over |= u64::from(over != 0) * bit;
+                clear[r] += above.count_ones();
+                near[r] |= u64::from(!(above | below) & lanes != 0) << at;
+                over[r] |= u64::from(over_floor != 0) << at;
                 let row = job.out.add((i + r) * job.cols);
                 if full {
                     _mm512_storeu_ps(row.offset(shift), x);
@@ -592,6 +615,12 @@ mod avx512 {
                     _mm512_mask_storeu_ps(row.wrapping_offset(shift), lanes, x);
                 }
             }
+        }
+        for r in (0..R).step_by(STEP) {
+            let flags = count.flags.get_unchecked_mut(feature0 + r / STEP);
+            flags.clear += clear[r];
+            flags.near |= near[r];
+            flags.over |= over[r];
         }
     }
 }

@@ -18,12 +18,14 @@ mod finish;
 mod histogram;
 mod masked;
 mod micro;
+mod reached;
 mod sequential;
 mod simd;
 
 pub use histogram::{NullHistogram, UpperTail};
 pub use micro::PackedWeights;
 use micro::RowFlags;
+use reached::SortedMaxima;
 use simd::orient_all;
 
 /// Features per GEMM tile (rows of the left operand).
@@ -415,7 +417,13 @@ impl Kernel {
                     col0,
                     floors,
                     &mut state.maxima[range.clone()],
-                    Some(&mut hits),
+                    Some((
+                        &mut hits,
+                        SortedMaxima {
+                            sorted: &mut state.sorted[range.clone()],
+                            below: &mut state.below[(col0 - base) / COL_TILE],
+                        },
+                    )),
                     &mut state.histogram,
                 );
                 if recording {
@@ -808,7 +816,7 @@ impl Kernel {
         col0: usize,
         floors: &mut [f32],
         maxima: &mut [f64],
-        reached: Option<&mut u64>,
+        mut reached: Option<(&mut u64, SortedMaxima<'_>)>,
         histogram: &mut [u64],
     ) -> u64 {
         if !histogram.is_empty() {
@@ -821,8 +829,8 @@ impl Kernel {
         // above a running maximum.
         let mut count = u64::from(flags.clear);
         if flags.near == 0 && flags.over == 0 {
-            if let Some(reached) = reached {
-                *reached += simd::count_at_least(maxima, row.threshold);
+            if let Some((hits, mut sorted)) = reached {
+                *hits += sorted.count_at_least(row.threshold);
             }
             return count;
         }
@@ -840,6 +848,9 @@ impl Kernel {
                             histogram[NullHistogram::bin(e as f32)] += 1;
                         }
                         if e > maxima[j] {
+                            if let Some((_, sorted)) = reached.as_mut() {
+                                sorted.replace(maxima[j], e);
+                            }
                             maxima[j] = e;
                             floors[j] = self.max_floor(e, self.global_band());
                         }
@@ -852,14 +863,17 @@ impl Kernel {
                 if tile[j] + row.slack > floors[j] {
                     let e = exact_at(j);
                     if e > maxima[j] {
+                        if let Some((_, sorted)) = reached.as_mut() {
+                            sorted.replace(maxima[j], e);
+                        }
                         maxima[j] = e;
                         floors[j] = self.max_floor(e, self.global_band());
                     }
                 }
             }
         }
-        if let Some(reached) = reached {
-            *reached += simd::count_at_least(maxima, row.threshold);
+        if let Some((hits, mut sorted)) = reached {
+            *hits += sorted.count_at_least(row.threshold);
         }
         count
     }
@@ -893,6 +907,10 @@ pub struct RankState {
     pub cols: usize,
     /// Exact (f64) running maximum per relabelling.
     pub maxima: Vec<f64>,
+    /// `maxima` sorted ascending within each tile's columns (`reached.rs`).
+    sorted: Vec<f64>,
+    /// Per column tile, the position of the last row's threshold in `sorted`.
+    below: Vec<u32>,
     floors: Vec<f32>,
     /// Pooled null histogram over this range (empty unless asked for).
     pub histogram: Vec<u64>,
@@ -917,6 +935,8 @@ impl RankState {
             records: Vec::new(),
             before: Vec::new(),
             maxima: vec![f64::NEG_INFINITY; cols],
+            sorted: vec![f64::NEG_INFINITY; cols],
+            below: vec![0; cols.div_ceil(COL_TILE)],
             floors: vec![f32::NEG_INFINITY; cols],
             histogram: if pooled_null {
                 vec![0; NullHistogram::BINS]
