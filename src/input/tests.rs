@@ -722,6 +722,33 @@ fn mapping_rss_kb(start: usize) -> usize {
     panic!("no mapping at {start:#x}");
 }
 
+/// An Arrow IPC matrix of `rows` x 4 f32 in batches of `rows_per_batch`,
+/// opened on its map: the stream, the map and the file's size.
+#[cfg(target_os = "linux")]
+fn mapped_four_column_matrix(
+    dir: &Path,
+    rows: usize,
+    rows_per_batch: usize,
+) -> (
+    crate::input::columns::RowStream<ipc_file::IpcBatchSource>,
+    Arc<memmap2::Mmap>,
+    usize,
+) {
+    let path = dir.join("m.arrow");
+    write_matrix(
+        &path,
+        MatrixFormat::ArrowIpc,
+        ValueType::F32,
+        rows,
+        4,
+        rows_per_batch,
+        rows_per_batch,
+    );
+    let file_bytes = std::fs::metadata(&path).unwrap().len() as usize;
+    let (stream, mmap) = ipc_file::open_for_test(&path, "feature", &names(4)).unwrap();
+    (stream, mmap, file_bytes)
+}
+
 /// The read part of a record batch is handed back as the reader goes: with
 /// one batch of 200,000 rows x 4 f32 (3.2 MB of values, ~2.7 MB of ids),
 /// after reading 3/4 of it in chunks the mapping keeps far less than the
@@ -730,19 +757,8 @@ fn mapping_rss_kb(start: usize) -> usize {
 #[test]
 fn arrow_reading_hands_back_read_pages() {
     let dir = tempfile::tempdir().unwrap();
-    let path = dir.path().join("m.arrow");
     let rows = 200_000;
-    write_matrix(
-        &path,
-        MatrixFormat::ArrowIpc,
-        ValueType::F32,
-        rows,
-        4,
-        rows,
-        rows,
-    );
-    let wanted = names(4);
-    let (mut stream, mmap) = ipc_file::open_for_test(&path, "feature", &wanted).unwrap();
+    let (mut stream, mmap, _) = mapped_four_column_matrix(dir.path(), rows, rows);
     let mut block = FeatureBlock::default();
     let mut read = 0;
     while read < rows * 3 / 4 {
@@ -763,20 +779,7 @@ fn arrow_reading_hands_back_read_pages() {
 #[test]
 fn arrow_opening_keeps_no_batch_pages_resident() {
     let dir = tempfile::tempdir().unwrap();
-    let path = dir.path().join("m.arrow");
-    let rows = 200_000;
-    write_matrix(
-        &path,
-        MatrixFormat::ArrowIpc,
-        ValueType::F32,
-        rows,
-        4,
-        500,
-        500,
-    );
-    let file_bytes = std::fs::metadata(&path).unwrap().len() as usize;
-    let wanted = names(4);
-    let (_stream, mmap) = ipc_file::open_for_test(&path, "feature", &wanted).unwrap();
+    let (_stream, mmap, file_bytes) = mapped_four_column_matrix(dir.path(), 200_000, 500);
     let resident = mapping_rss_kb(mmap.as_ptr() as usize) * 1024;
     assert!(
         resident < file_bytes / 20,
