@@ -391,6 +391,13 @@ fn scan_into_out_dir(
     let step_down = options.maxt_computed() == Some(MaxtMode::StepDown);
     let mut pipeline_options = pipeline_options(options, design.samples.len(), b_total);
     pipeline_options.prepare_only = step_down;
+    if step_down {
+        // The first pass only screens and standardizes, and its slow
+        // consumer is the sorter: deeper queues would only hold more
+        // chunks (in long runs they run full: ~10 MiB at 10,000,000
+        // features, --memory 256M), not keep the workers busier.
+        pipeline_options.queue_depth = 1;
+    }
 
     let resumed = Checkpoint::load_matching(
         &options.out,
